@@ -1,0 +1,30 @@
+# Two entry points: `make demo` (set up, then triage sample_data/) and `make test` (set up, lint, tests).
+PY ?= python3.11
+VENV ?= .venv
+BIN = $(VENV)/bin
+
+.PHONY: setup demo test lint bench clean
+
+$(BIN)/.installed: pyproject.toml
+	@command -v $(PY) >/dev/null 2>&1 || { echo "need $(PY) on PATH (or: make PY=python3 ...)"; exit 2; }
+	test -x $(BIN)/python || $(PY) -m venv $(VENV)
+	$(BIN)/pip install -q torch==2.13.0
+	$(BIN)/pip install -q -e '.[test]'
+	touch $@
+
+setup: $(BIN)/.installed
+
+demo: setup
+	$(BIN)/triage run --model sample_data/model --data sample_data/devset.tsv --out reports/demo
+
+lint: setup
+	$(BIN)/ruff check triage tests
+
+test: lint
+	$(BIN)/python -m pytest -q
+
+bench: setup
+	$(BIN)/python -m triage.bench
+
+clean:
+	rm -rf $(VENV) build *.egg-info

@@ -1,0 +1,111 @@
+"""The decoder's generation rules as transformers logits processors.
+
+transformers' beam search takes log_softmax of the raw float32 logits and then applies the
+processors built from the generation config (forced tokens, minimum length, banned words,
+n-gram blocking, repetition penalty). Teacher-forced scoring applies the very same list to
+the very same log-probs, so a rule counts exactly as it did in decoding.
+
+For a transformers checkpoint the list is the one the model's own ``_get_logits_processor``
+builds; for any other model it is built here from the same classes.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import torch
+
+from .settings import DecoderSettings
+
+# processor class name -> the rule's plain name (used in `blocked` reasons)
+RULE_NAMES = {
+    "MinLengthLogitsProcessor": "minimum length",
+    "MinNewTokensLengthLogitsProcessor": "minimum length",
+    "NoRepeatNGramLogitsProcessor": "repeated n-gram",
+    "EncoderNoRepeatNGramLogitsProcessor": "n-gram copied from the source",
+    "NoBadWordsLogitsProcessor": "banned word",
+    "SequenceBiasLogitsProcessor": "banned word",
+    "ForcedBOSTokenLogitsProcessor": "forced first token",
+    "ForcedEOSTokenLogitsProcessor": "length limit",
+    "SuppressTokensLogitsProcessor": "suppressed token",
+    "SuppressTokensAtBeginLogitsProcessor": "suppressed first token",
+    "RepetitionPenaltyLogitsProcessor": "repetition penalty",
+}
+
+
+def rule_name(processor: Any) -> str:
+    return RULE_NAMES.get(type(processor).__name__, type(processor).__name__)
+
+
+def _generation_config(settings: DecoderSettings, base: Any = None) -> Any:
+    gc = settings.to_generation_config(base)
+    # processors see max_length = start token + allowed new tokens, as inside generate
+    gc.max_length = settings.limit_new_tokens() + 1
+    gc.max_new_tokens = None
+    return gc
+
+
+def build_processors(model: Any, settings: DecoderSettings, source_ids: torch.Tensor | None = None):
+    """The logits processors the decoder applies at each step, for a batch of sources [B, S]."""
+    from transformers import LogitsProcessorList
+
+    hf = getattr(model, "model", None)
+    if hf is not None and hasattr(hf, "_get_logits_processor"):
+        gc = _generation_config(settings, hf.generation_config)
+        hf._prepare_special_tokens(gc, True, device=source_ids.device if source_ids is not None else "cpu")
+        return hf._get_logits_processor(
+            generation_config=gc,
+            input_ids_seq_length=1,
+            encoder_input_ids=source_ids,
+            prefix_allowed_tokens_fn=None,
+            logits_processor=LogitsProcessorList(),
+            device="cpu",
+            model_kwargs={},
+        )
+    return _build_generic(model, settings, source_ids)
+
+
+def _build_generic(model: Any, settings: DecoderSettings, source_ids: torch.Tensor | None):
+    from transformers import LogitsProcessorList
+    from transformers.generation import logits_process as lp
+
+    eos = torch.tensor(list(settings.eos_token_ids) or [model.end_id])
+    out = LogitsProcessorList()
+    if settings.repetition_penalty != 1.0:
+        out.append(lp.RepetitionPenaltyLogitsProcessor(settings.repetition_penalty))
+    if settings.no_repeat_ngram_size > 0:
+        out.append(lp.NoRepeatNGramLogitsProcessor(settings.no_repeat_ngram_size))
+    if settings.encoder_no_repeat_ngram_size > 0 and source_ids is not None:
+        out.append(lp.EncoderNoRepeatNGramLogitsProcessor(settings.encoder_no_repeat_ngram_size, source_ids))
+    if settings.bad_words_ids:
+        out.append(lp.NoBadWordsLogitsProcessor([list(w) for w in settings.bad_words_ids], eos))
+    if settings.min_length > 0:
+        out.append(lp.MinLengthLogitsProcessor(settings.min_length, eos))
+    if settings.min_new_tokens:
+        out.append(lp.MinNewTokensLengthLogitsProcessor(1, settings.min_new_tokens, eos))
+    if settings.forced_bos_token_id is not None:
+        out.append(lp.ForcedBOSTokenLogitsProcessor(settings.forced_bos_token_id))
+    if settings.forced_eos_token_id is not None:
+        out.append(lp.ForcedEOSTokenLogitsProcessor(settings.limit_new_tokens() + 1, settings.forced_eos_token_id))
+    return out
+
+
+def apply_rules(processors: Any, prefixes: torch.Tensor, logprobs: torch.Tensor) -> torch.Tensor:
+    """Processed log-probs [B, V] for the next token after `prefixes` [B, t]."""
+    if not processors:
+        return logprobs
+    return processors(prefixes, logprobs.clone())
+
+
+def first_blocking_rule(processors: Any, prefixes: torch.Tensor, logprobs: torch.Tensor, token: int, row: int) -> str:
+    """Name of the first rule that sets `token` to minus infinity for `row`."""
+    scores = logprobs[row : row + 1].clone()
+    ids = prefixes[row : row + 1]
+    for proc in processors:
+        try:
+            scores = proc(ids, scores)
+        except Exception:  # a processor that needs the whole batch (encoder n-grams): fall back
+            return rule_name(proc)
+        if torch.isneginf(scores[0, token]):
+            return rule_name(proc)
+    return "decoding rule"
