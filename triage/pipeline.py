@@ -1,0 +1,278 @@
+"""The main job as one function call: dev set -> scores -> verdicts -> analysis.
+
+    from triage import load_model, read_devset, run_triage
+    model = load_model("sample_data/model")
+    result = run_triage(model, read_devset("sample_data/devset.tsv"))
+    result.verdicts        # one row per input row, in input order (pandas DataFrame)
+    result.buckets         # counts per length bucket with the search share's 95% interval
+    result.summary         # what summary.json holds
+
+Writing files (verdicts.csv, summary.json, tokens.jsonl, report.html) is outputs.py's job.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import pandas as pd
+
+from . import __version__
+from .analysis import DEFAULT_EDGES, assign_bucket, bucket_table, recommend, search_share, verdict_counts
+from .metrics import corpus, sentence_scores
+from .scoring import ScoreRequest, TargetScore, score_requests
+from .settings import DecoderSettings
+from .verdicts import FAILED, decide, matches_any
+
+DEFAULT_MARGIN = 1e-4
+
+
+@dataclass
+class TriageOptions:
+    """How failures are found and grouped (the objective itself is in DecoderSettings)."""
+
+    metric: str = "chrf"
+    below: float | None = None          # also require sentence metric < below to count as failed
+    margin: float = DEFAULT_MARGIN
+    edges: tuple[int, ...] = DEFAULT_EDGES
+    bucket_by: str = "ref-words"
+    token_budget: int = 4096
+    progress: bool = True
+
+
+@dataclass
+class TriageResult:
+    verdicts: pd.DataFrame
+    buckets: pd.DataFrame
+    summary: dict[str, Any]
+    tokens: list[dict[str, Any]]
+    settings: DecoderSettings
+    options: TriageOptions
+    scores: dict[int, tuple[list[TargetScore], TargetScore]] = field(default_factory=dict, repr=False)
+
+
+def model_settings(model: Any, **overrides: Any) -> DecoderSettings:
+    """The decoder's settings: the checkpoint's generation config, then the overrides."""
+    hf = getattr(model, "model", None)
+    if hf is not None and getattr(hf, "generation_config", None) is not None:
+        origin = f"generation_config.json of {model.model_dir}" if getattr(model, "model_dir", None) else "generation_config"
+        return DecoderSettings.from_generation_config(hf.generation_config, origin=origin, **overrides)
+    base = getattr(model, "default_settings", None)
+    if isinstance(base, DecoderSettings):
+        return base.replace(**{k: v for k, v in overrides.items() if v is not None})
+    kw = {"eos_token_ids": (model.end_id,), "decoder_start_token_id": model.start_id, "pad_token_id": model.pad_id}
+    kw.update({k: v for k, v in overrides.items() if v is not None})
+    return DecoderSettings(origin="defaults", **kw)
+
+
+def _bar(total: int, desc: str, enabled: bool):
+    from tqdm.auto import tqdm
+
+    return tqdm(total=total, desc=desc, unit="row", disable=not enabled or total == 0, leave=False)
+
+
+def run_triage(
+    model: Any,
+    devset: Any,
+    settings: DecoderSettings | None = None,
+    options: TriageOptions | None = None,
+    *,
+    model_info: dict[str, Any] | None = None,
+) -> TriageResult:
+    """Triage a dev set (a DevSet from read_devset, or a DataFrame with id, source, references, output)."""
+    options = options or TriageOptions()
+    settings = settings or model_settings(model)
+    frame = devset.frame if hasattr(devset, "frame") else devset
+    frame = frame.reset_index(drop=True)
+    n = len(frame)
+    sources = [settings.source_prefix + s for s in frame["source"].tolist()]
+    references = [list(r) for r in frame["references"].tolist()]
+    src_ids = model.tokenize_sources(sources) if n else []
+
+    outputs = frame["output"].tolist() if "output" in frame else [None] * n
+    decoded_here = any(o is None for o in outputs)
+    if decoded_here:
+        from .decode import decode
+
+        todo = [i for i, o in enumerate(outputs) if o is None]
+        with _bar(len(todo), "decoding", options.progress) as bar:
+            dec = decode(model, settings, [src_ids[i] for i in todo], progress=bar.update)
+        for i, d in zip(todo, dec, strict=True):
+            outputs[i] = d.text
+
+    # ---- which rows failed
+    metric_values = sentence_scores(options.metric, outputs, references) if n else []
+    failed = []
+    for i in range(n):
+        wrong = not matches_any(outputs[i], references[i])
+        if wrong and options.below is not None:
+            wrong = metric_values[i] < options.below
+        failed.append(wrong)
+
+    # ---- score the failed rows: every reference and the output, one encoder pass per row
+    fail_idx = [i for i in range(n) if failed[i]]
+    requests = []
+    limit = settings.limit_new_tokens()
+    for i in fail_idx:
+        refs = model.tokenize_targets(references[i])
+        out = model.tokenize_targets([outputs[i]])[0]
+        requests.append(ScoreRequest(src_ids[i], refs + [out], [False] * len(refs) + [len(out) >= limit]))
+    with _bar(len(requests), "scoring", options.progress) as bar:
+        scored = score_requests(model, settings, requests, token_budget=options.token_budget, progress=bar.update)
+
+    # ---- verdicts, one row per input row in input order
+    rows: list[dict[str, Any]] = []
+    tokens: list[dict[str, Any]] = []
+    kept: dict[int, tuple[list[TargetScore], TargetScore]] = {}
+    by_row = dict(zip(fail_idx, scored, strict=True))
+    for i in range(n):
+        rec = frame.iloc[i]
+        row: dict[str, Any] = {"id": rec["id"], "line": int(rec["line"]) if "line" in frame else i + 1}
+        ref_texts = references[i]
+        best = 0
+        if not failed[i]:
+            row.update(verdict="correct", reason="output matches a reference" if matches_any(outputs[i], ref_texts)
+                       else f"{options.metric} {metric_values[i]:.1f} >= {options.below:g}")
+            ref_s = out_s = None
+        else:
+            targets = by_row[i]
+            ref_s, out_s = targets[:-1], targets[-1]
+            v = decide(ref_s, out_s, options.margin)
+            row.update(verdict=v.verdict, reason=v.reason)
+            best = v.best_ref if v.best_ref is not None else 0
+            kept[i] = (ref_s, out_s)
+        r = ref_s[best] if ref_s else None
+        row.update(
+            ref_logprob=_num(r.logprob_sum) if r else math.nan,
+            out_logprob=_num(out_s.logprob_sum) if out_s else math.nan,
+            ref_len=r.length if r and r.scored else pd.NA,
+            out_len=out_s.length if out_s and out_s.scored else pd.NA,
+            ref_score=_num(r.score) if r else math.nan,
+            out_score=_num(out_s.score) if out_s else math.nan,
+        )
+        row["score_gap"] = row["ref_score"] - row["out_score"] if out_s and r else math.nan
+        row["out_hit_limit"] = bool(out_s.hit_limit) if out_s else False
+        row["best_ref"] = best + 1
+        row["n_refs"] = len(ref_texts)
+        row["ref_words"] = len(ref_texts[best].split())
+        row["out_words"] = len(outputs[i].split())
+        row[options.metric] = round(metric_values[i], 6)
+        row["source"] = frame.iloc[i]["source"]
+        row["reference"] = ref_texts[best]
+        row["output"] = outputs[i]
+        rows.append(row)
+        if out_s is not None:
+            tokens.append(_token_record(model, rec["id"], r, out_s))
+
+    verdicts = pd.DataFrame(rows)
+    if n:
+        verdicts.insert(verdicts.columns.get_loc("ref_words"), "bucket_length",
+                        _bucket_lengths(model, options.bucket_by, frame, references, verdicts))
+        verdicts.insert(verdicts.columns.get_loc("bucket_length"), "bucket",
+                        [assign_bucket(int(x), options.edges) for x in verdicts["bucket_length"]])
+        buckets = bucket_table(verdicts, options.edges)
+    else:
+        buckets = pd.DataFrame()
+    summary = _summary(verdicts, buckets, settings, options, devset, model, model_info, decoded_here,
+                       outputs, references)
+    return TriageResult(verdicts, buckets, summary, tokens, settings, options, kept)
+
+
+def _num(x: float) -> float:
+    return float(x) if x is not None else math.nan
+
+
+def _bucket_lengths(model, bucket_by, frame, references, verdicts) -> list[int]:
+    if bucket_by == "ref-words":
+        return verdicts["ref_words"].astype(int).tolist()
+    if bucket_by == "source-words":
+        return [len(s.split()) for s in frame["source"]]
+    if bucket_by == "ref-tokens":
+        best = verdicts["best_ref"].astype(int).tolist()
+        return [len(t) for t in model.tokenize_targets([refs[b - 1] for refs, b in zip(references, best, strict=True)])]
+    if bucket_by == "source-tokens":
+        return [len(t) for t in model.tokenize_sources(frame["source"].tolist())]
+    raise ValueError(f"unknown bucket basis {bucket_by!r}")
+
+
+def _token_record(model, row_id, ref: TargetScore | None, out: TargetScore) -> dict[str, Any]:
+    def side(s: TargetScore | None) -> dict[str, Any] | None:
+        if s is None or not s.scored:
+            return None
+        return {
+            "ids": s.ids,
+            "pieces": model.token_strings(s.ids),
+            "logprobs": [round(x, 6) if math.isfinite(x) else None for x in s.logprobs],
+        }
+
+    return {"id": row_id, "reference": side(ref), "output": side(out)}
+
+
+def _summary(verdicts, buckets, settings, options, devset, model, model_info, decoded_here, outputs,
+             references) -> dict[str, Any]:
+    counts = verdict_counts(verdicts["verdict"]) if len(verdicts) else {}
+    k, n = search_share(counts)
+    failed = sum(counts.get(v, 0) for v in FAILED)
+    score, sig = corpus(options.metric, outputs, references) if len(verdicts) else (math.nan, "")
+    gaps = verdicts.loc[verdicts["verdict"].isin(["search", "model", "tie"]), "score_gap"] if len(verdicts) else []
+    summary: dict[str, Any] = {
+        "tool": {"name": "triage", "version": __version__},
+        "model": model_info or {"fingerprint": model.fingerprint()},
+        "data": {
+            "path": getattr(devset, "path", None),
+            "sha256": getattr(devset, "sha256", None),
+            "format": getattr(devset, "fmt", None),
+            "rows": int(len(verdicts)),
+            "outputs": "decoded by triage" if decoded_here else "given",
+        },
+        "settings": settings.to_dict(),
+        "objective": settings.signature(),
+        "options": {
+            "metric": options.metric,
+            "below": options.below,
+            "margin": options.margin,
+            "bucket_edges": list(options.edges),
+            "bucket_by": options.bucket_by,
+        },
+        "counts": counts,
+        "failed": failed,
+        "search_share": {"search": k, "compared": n, "share": k / n if n else None,
+                         "interval95": list(_ci(k, n))},
+        "buckets": [
+            {
+                "range": b["range"],
+                "rows": int(b["rows"]),
+                "failed": int(b["failed"]),
+                "counts": {v: int(b[v]) for v in counts},
+                "search_share": None if math.isnan(b["search_share"]) else float(b["search_share"]),
+                "interval95": [None if math.isnan(b["search_low"]) else float(b["search_low"]),
+                               None if math.isnan(b["search_high"]) else float(b["search_high"])],
+            }
+            for _, b in buckets.iterrows()
+        ],
+        "score_gap": _describe(gaps),
+        "corpus_metric": {"name": options.metric, "score": score, "signature": sig},
+        "skipped_reasons": verdicts.loc[verdicts["verdict"] == "skipped", "reason"].value_counts().to_dict()
+        if len(verdicts) else {},
+        "outputs_at_length_limit": int(verdicts["out_hit_limit"].sum()) if len(verdicts) else 0,
+    }
+    summary["recommendation"] = recommend(counts)
+    return summary
+
+
+def _ci(k: int, n: int) -> tuple[float | None, float | None]:
+    from .analysis import wilson_interval
+
+    lo, hi = wilson_interval(k, n)
+    return (None if math.isnan(lo) else lo, None if math.isnan(hi) else hi)
+
+
+def _describe(values: Sequence[float]) -> dict[str, Any]:
+    s = pd.Series(list(values), dtype="float64")
+    s = s[s.apply(math.isfinite)]
+    if s.empty:
+        return {"n": 0}
+    return {"n": int(s.size), "mean": float(s.mean()), "median": float(s.median()),
+            "min": float(s.min()), "max": float(s.max())}

@@ -1,0 +1,179 @@
+"""Teacher-forced scoring of targets under the decoder's objective.
+
+For each row, the source is encoded once and every target of that row (its references and
+its output) is scored against the same encoder state. Per target it records the log-prob of
+each scored token (end token included unless the target stopped at the length limit), their
+sum, and the objective's score. Batches are length-sorted under a token budget; results come
+back in input order.
+
+When the settings carry generation rules, the rules (transformers' logits processors) are
+applied to each position's log-probs exactly as the decoder applied them; a target token the
+rules set to minus infinity makes the target `blocked`, and the rule is named.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field
+
+import torch
+
+from .model_api import SequenceModel, forced_logprobs
+from .rules import apply_rules, build_processors, first_blocking_rule
+from .settings import DecoderSettings
+
+
+@dataclass
+class TargetScore:
+    """One target's teacher-forced log-probs under the objective."""
+
+    ids: list[int]                      # scored token ids (end token last unless hit_limit)
+    logprobs: list[float]               # one per scored token, after the decoder's rules
+    logprob_sum: float
+    length: int                         # scored tokens (the length the penalty sees)
+    score: float                        # objective: logprob_sum / penalty(length)
+    hit_limit: bool = False             # stopped at the decoder's length limit: scored without end token
+    blocked_rule: str | None = None     # a decoding rule forbids this target
+    skipped: str | None = None          # why it could not be scored
+
+    @property
+    def scored(self) -> bool:
+        return self.skipped is None
+
+
+@dataclass
+class ScoreRequest:
+    """Targets of one row, all scored against the same source."""
+
+    source_ids: list[int]
+    targets: list[list[int]]            # target ids without the end token
+    allow_no_end: list[bool] = field(default_factory=list)  # may this target be scored without end token?
+
+
+def plan_target(ids: list[int], end_id: int, limit: int, allow_no_end: bool) -> tuple[list[int], bool, str | None]:
+    """The scored sequence for target `ids`: (labels, hit_limit, blocked_rule)."""
+    if allow_no_end and len(ids) == limit:
+        return list(ids), True, None
+    labels = list(ids) + [end_id]
+    if len(labels) > limit:
+        return labels, False, "length limit"
+    return labels, False, None
+
+
+def score_requests(
+    model: SequenceModel,
+    settings: DecoderSettings,
+    requests: Sequence[ScoreRequest],
+    *,
+    token_budget: int = 4096,
+    progress: Callable[[int], None] | None = None,
+) -> list[list[TargetScore]]:
+    """Score every target of every request; results[i][j] is target j of request i."""
+    limit = settings.limit_new_tokens()
+    results: list[list[TargetScore | None]] = [[None] * len(r.targets) for r in requests]
+    jobs = []  # (request index, target index, labels, hit_limit, blocked)
+    for i, req in enumerate(requests):
+        for j, ids in enumerate(req.targets):
+            no_end = req.allow_no_end[j] if j < len(req.allow_no_end) else False
+            labels, hit, blocked = plan_target(ids, model.end_id, limit, no_end)
+            reason = _unscorable(model, req.source_ids, labels)
+            if reason:
+                results[i][j] = TargetScore(labels, [], float("nan"), len(labels), float("nan"), hit, None, reason)
+                continue
+            jobs.append((i, j, labels, hit, blocked))
+
+    # group jobs by row so a source is encoded once; order rows by their longest target
+    by_row: dict[int, list] = {}
+    for job in jobs:
+        by_row.setdefault(job[0], []).append(job)
+    order = sorted(by_row, key=lambda i: (max(len(j[2]) for j in by_row[i]), len(requests[i].source_ids)))
+    batch: list[int] = []
+    width = 0
+    for i in order:
+        w = max(max(len(j[2]) for j in by_row[i]), len(requests[i].source_ids))
+        n_targets = len(by_row[i])
+        rows_targets = sum(len(by_row[k]) for k in batch) + n_targets
+        if batch and max(width, w) * rows_targets > token_budget:
+            _score_batch(model, settings, requests, batch, by_row, results)
+            if progress:
+                progress(len(batch))
+            batch, width = [], 0
+        batch.append(i)
+        width = max(width, w)
+    if batch:
+        _score_batch(model, settings, requests, batch, by_row, results)
+        if progress:
+            progress(len(batch))
+    return results  # type: ignore[return-value]
+
+
+def _unscorable(model: SequenceModel, source_ids: list[int], labels: list[int]) -> str | None:
+    if not source_ids:
+        return "source is empty after tokenization"
+    if model.max_source_tokens is not None and len(source_ids) > model.max_source_tokens:
+        return f"source has {len(source_ids)} tokens, the model takes at most {model.max_source_tokens}"
+    if model.max_target_tokens is not None and len(labels) > model.max_target_tokens:
+        return f"target has {len(labels)} tokens, the model takes at most {model.max_target_tokens}"
+    return None
+
+
+@torch.inference_mode()
+def _score_batch(model, settings, requests, batch, by_row, results) -> None:
+    state = model.encode([requests[i].source_ids for i in batch])
+    index, labels_list, meta = [], [], []
+    for b, i in enumerate(batch):
+        for job in by_row[i]:
+            index.append(b)
+            labels_list.append(job[2])
+            meta.append(job)
+    state, _ = model.select(state, None, torch.tensor(index, dtype=torch.long))
+    n, width = len(labels_list), max(len(x) for x in labels_list)
+    labels = torch.full((n, width), model.pad_id, dtype=torch.long)
+    inputs = torch.full((n, width), model.pad_id, dtype=torch.long)
+    for k, lab in enumerate(labels_list):
+        labels[k, : len(lab)] = torch.tensor(lab)
+        inputs[k, 0] = model.start_id
+        inputs[k, 1 : len(lab)] = torch.tensor(lab[:-1])
+
+    src = _source_tensor(model, [requests[batch[b]].source_ids for b in index])
+    processors = build_processors(model, settings, src)
+    if not processors and hasattr(model, "forced_target_logprobs"):
+        token_lp = model.forced_target_logprobs(state, inputs, labels).float()
+        for k, job in enumerate(meta):
+            _store(settings, results, job, token_lp[k, : len(job[2])].tolist(), None)
+        return
+
+    full = forced_logprobs(model, state, inputs).float()
+    token_lp = torch.empty((n, width), dtype=torch.float32)
+    blocked_by: dict[int, str] = {}
+    for t in range(width):
+        prefixes = inputs[:, : t + 1]
+        step = apply_rules(processors, prefixes, full[:, t, :])
+        token_lp[:, t] = step.gather(-1, labels[:, t : t + 1]).squeeze(-1)
+        for k in torch.nonzero(torch.isneginf(token_lp[:, t])).flatten().tolist():
+            if k not in blocked_by and t < len(labels_list[k]):
+                blocked_by[k] = first_blocking_rule(processors, prefixes, full[:, t, :], int(labels[k, t]), k)
+    for k, job in enumerate(meta):
+        _store(settings, results, job, token_lp[k, : len(job[2])].tolist(), blocked_by.get(k))
+
+
+def _source_tensor(model, rows: list[list[int]]) -> torch.Tensor:
+    width = max(len(r) for r in rows)
+    t = torch.full((len(rows), width), model.pad_id, dtype=torch.long)
+    for k, r in enumerate(rows):
+        t[k, : len(r)] = torch.tensor(r)
+    return t
+
+
+def _store(settings: DecoderSettings, results, job, lps: list[float], rule: str | None) -> None:
+    i, j, labels, hit, blocked = job
+    total = math.fsum(lps)
+    if rule is None and blocked is not None:
+        rule = blocked
+    if rule is not None or math.isinf(total):
+        score = float("-inf")
+        rule = rule or "decoding rule"
+    else:
+        score = settings.objective(total, len(labels))
+    results[i][j] = TargetScore(list(labels), lps, total, len(labels), score, hit, rule)

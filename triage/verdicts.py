@@ -1,0 +1,66 @@
+"""The verdict rule: which failed rows are search-side and which are model-side.
+
+A row is `correct` when its output equals one of its references after whitespace
+normalization (and, with a metric threshold, when its sentence score reaches it). Every
+other row is failed and gets one verdict, comparing the output with its best-scoring
+reference under the decoder's objective:
+
+    search   ref_score > out_score + margin   the model prefers the reference: the beam missed it
+    model    out_score > ref_score + margin   the model prefers its wrong output
+    tie      |ref_score - out_score| <= margin
+    blocked  a decoding rule forbids every reference (score minus infinity); the rule is named
+    skipped  the row cannot be scored (reason given)
+
+A `model` verdict does not prove that no better output exists; a `search` verdict proves the
+beam missed one (the reference).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+from .scoring import TargetScore
+
+VERDICTS = ("correct", "search", "model", "tie", "blocked", "skipped")
+FAILED = ("search", "model", "tie", "blocked", "skipped")
+
+
+def normalize_ws(text: str) -> str:
+    return " ".join(text.split())
+
+
+def matches_any(output: str, references: list[str]) -> bool:
+    out = normalize_ws(output)
+    return any(out == normalize_ws(r) for r in references)
+
+
+@dataclass
+class Verdict:
+    verdict: str
+    reason: str
+    best_ref: int | None = None   # index of the best-scoring reference
+
+
+def decide(ref_scores: list[TargetScore], out_score: TargetScore, margin: float) -> Verdict:
+    """The verdict of a failed row from its scored references and output."""
+    if not out_score.scored:
+        return Verdict("skipped", f"output: {out_score.skipped}")
+    scored = [(k, s) for k, s in enumerate(ref_scores) if s.scored]
+    if not scored:
+        return Verdict("skipped", f"reference: {ref_scores[0].skipped}")
+    if out_score.blocked_rule is not None:
+        return Verdict(
+            "skipped",
+            f"the output breaks the decoder's rule ({out_score.blocked_rule}): it was not produced at these settings",
+        )
+    best_k, best = max(scored, key=lambda ks: (ks[1].score, -ks[0]))
+    if math.isinf(best.score) and best.score < 0:
+        rules = sorted({s.blocked_rule or "decoding rule" for _, s in scored})
+        return Verdict("blocked", "the decoder's rules forbid the reference: " + ", ".join(rules), best_k)
+    diff = best.score - out_score.score
+    if diff > margin:
+        return Verdict("search", f"reference outscores output by {diff:.4f}", best_k)
+    if diff < -margin:
+        return Verdict("model", f"output outscores reference by {-diff:.4f}", best_k)
+    return Verdict("tie", f"scores within the margin {margin:g}", best_k)
