@@ -40,6 +40,8 @@ class TriageOptions:
     bucket_by: str = "ref-words"
     token_budget: int = 4096
     progress: bool = True
+    cache_dir: str | None = None        # score cache folder (None: no cache)
+    chunk_rows: int = 256               # rows scored (and cached) per chunk
 
 
 @dataclass
@@ -51,6 +53,7 @@ class TriageResult:
     settings: DecoderSettings
     options: TriageOptions
     scores: dict[int, tuple[list[TargetScore], TargetScore]] = field(default_factory=dict, repr=False)
+    cache: dict[str, int] | None = None  # rows from the score cache / scored now (not part of summary.json)
 
 
 def model_settings(model: Any, **overrides: Any) -> DecoderSettings:
@@ -119,8 +122,7 @@ def run_triage(
         refs = model.tokenize_targets(references[i])
         out = model.tokenize_targets([outputs[i]])[0]
         requests.append(ScoreRequest(src_ids[i], refs + [out], [False] * len(refs) + [len(out) >= limit]))
-    with _bar(len(requests), "scoring", options.progress) as bar:
-        scored = score_requests(model, settings, requests, token_budget=options.token_budget, progress=bar.update)
+    scored, cache_stats = _score_with_cache(model, settings, options, requests)
 
     # ---- verdicts, one row per input row in input order
     rows: list[dict[str, Any]] = []
@@ -177,7 +179,70 @@ def run_triage(
         buckets = pd.DataFrame()
     summary = _summary(verdicts, buckets, settings, options, devset, model, model_info, decoded_here,
                        outputs, references)
-    return TriageResult(verdicts, buckets, summary, tokens, settings, options, kept)
+    result = TriageResult(verdicts, buckets, summary, tokens, settings, options, kept)
+    result.cache = cache_stats
+    return result
+
+
+class ScoringInterrupted(KeyboardInterrupt):
+    """Ctrl-C during scoring; `done` rows were scored (and cached) before it."""
+
+    def __init__(self, done: int, total: int):
+        super().__init__(f"interrupted after scoring {done} of {total} failed rows")
+        self.done, self.total = done, total
+
+
+def _score_with_cache(model, settings, options, requests):
+    cache = None
+    if options.cache_dir is not None:
+        from .cache import ScoreCache
+
+        cache = ScoreCache(options.cache_dir, model.fingerprint(), settings.fingerprint())
+    results: list = [None] * len(requests)
+    todo = []
+    for k, req in enumerate(requests):
+        hit = cache.get(req) if cache else None
+        if hit is not None:
+            results[k] = hit
+        else:
+            todo.append(k)
+    done = len(requests) - len(todo)
+    try:
+        with _bar(len(requests), "scoring", options.progress) as bar:
+            bar.update(done)
+            for start in range(0, len(todo), options.chunk_rows):
+                chunk = todo[start : start + options.chunk_rows]
+                out = score_requests(model, settings, [requests[k] for k in chunk],
+                                     token_budget=options.token_budget, progress=bar.update)
+                for k, r in zip(chunk, out, strict=True):
+                    results[k] = r
+                if cache:
+                    cache.put_many([(requests[k], r) for k, r in zip(chunk, out, strict=True)])
+                done += len(chunk)
+    except KeyboardInterrupt:
+        raise ScoringInterrupted(done, len(requests)) from None
+    finally:
+        if cache:
+            cache.close()
+    stats = {"hits": cache.hits, "misses": cache.misses} if cache else None
+    return results, stats
+
+
+def model_info(model, spec: str) -> dict[str, Any]:
+    """What the report says about the model: where it came from and its fingerprint."""
+    info: dict[str, Any] = {"spec": spec, "sha256": model.fingerprint()}
+    path = getattr(model, "model_dir", None)
+    if path is not None:
+        info["path"] = str(path)
+    hf = getattr(model, "model", None)
+    if hf is not None and hasattr(hf, "config"):
+        info["architecture"] = type(hf).__name__
+        info["parameters"] = int(sum(p.numel() for p in hf.parameters()))
+    tok = getattr(model, "tokenizer", None)
+    if tok is not None:
+        info["tokenizer"] = type(tok).__name__
+        info["vocab"] = len(tok)
+    return info
 
 
 def _num(x: float) -> float:

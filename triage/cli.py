@@ -1,0 +1,294 @@
+"""The command line: a thin shell over the library (triage.pipeline, triage.outputs, triage.report).
+
+torch and transformers are imported only inside the commands that need them, so
+``triage --help`` answers at once.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import sys
+import time
+from pathlib import Path
+
+from . import __version__
+from .errors import OptionError, TriageError
+
+EPILOG = """\
+verdicts: search = the model prefers the reference (the beam missed it); model = the model prefers
+its wrong output; tie = within --margin; blocked = a decoding rule forbids the reference;
+skipped = the row cannot be scored (reason given). Exit codes: 0 done, 2 bad input or options,
+130 interrupted (previous outputs left intact)."""
+
+
+def _bool_or_never(text: str):
+    low = text.lower()
+    if low in ("true", "yes", "1", "on"):
+        return True
+    if low in ("false", "no", "0", "off"):
+        return False
+    if low == "never":
+        return "never"
+    raise argparse.ArgumentTypeError("expected true, false or never")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(
+        prog="triage",
+        description="Search-versus-model error triage for beam-search decoded sequence-to-sequence models.",
+        epilog=EPILOG,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    p.add_argument("--version", action="version", version=f"triage {__version__}")
+    sub = p.add_subparsers(dest="command", metavar="COMMAND")
+
+    r = sub.add_parser("run", help="triage a dev set: force-score, label, group by length, write the outputs",
+                       description="Force-score reference and output of every failed row under the decoder's "
+                       "objective and label each row.", epilog=EPILOG,
+                       formatter_class=argparse.RawDescriptionHelpFormatter)
+    g = r.add_argument_group("model")
+    g.add_argument("--model", required=True, metavar="SPEC",
+                   help="checkpoint directory, a name already in the local Hugging Face cache, or "
+                   "python:package.module:factory for a model of your own (never downloads)")
+    g.add_argument("--device", default="cpu", help="torch device (default: cpu)")
+    g.add_argument("--threads", type=int, default=None, help="torch CPU threads (default: torch's choice)")
+    g.add_argument("--allow-pickle", action="store_true",
+                   help="allow weights in a pickle-based format (.bin/.pt); pickles can run code")
+    g.add_argument("--trust-remote-code", action="store_true",
+                   help="allow the checkpoint's own Python code (off by default)")
+
+    g = r.add_argument_group("dev set")
+    g.add_argument("--data", metavar="FILE", help="dev set as .tsv (with header), .csv or .jsonl")
+    g.add_argument("--format", choices=("tsv", "csv", "jsonl"), help="format of --data (default: by extension)")
+    g.add_argument("--column", action="append", default=[], metavar="OURS=THEIRS",
+                   help="map a column: source=, reference=, output= or id= (repeatable), e.g. source=src")
+    g.add_argument("--source", metavar="FILE", help="plain-text sources, one segment per line")
+    g.add_argument("--reference", action="append", default=[], metavar="FILE",
+                   help="plain-text references, one per line (repeat for several references)")
+    g.add_argument("--output", metavar="FILE",
+                   help="plain-text decoded outputs, one per line (omit to let triage decode)")
+
+    g = r.add_argument_group("decoder objective (defaults: the checkpoint's generation_config.json)")
+    g.add_argument("--beam", type=int, metavar="N", help="beam width the outputs were decoded with")
+    g.add_argument("--alpha", type=float, metavar="A", help="length-penalty exponent")
+    g.add_argument("--penalty", choices=("power", "gnmt", "none"),
+                   help="length-penalty form: power = len**alpha (transformers), gnmt = ((5+len)/6)**alpha, "
+                   "none = plain sum")
+    g.add_argument("--max-new-tokens", type=int, metavar="N", help="decoder's length limit (tokens)")
+    g.add_argument("--early-stopping", type=_bool_or_never, metavar="true|false|never",
+                   help="beam search stopping rule")
+    g.add_argument("--prefix", default=None, metavar="TEXT", help="task prefix added to each source (T5 style)")
+
+    g = r.add_argument_group("failures, verdicts and buckets")
+    g.add_argument("--metric", choices=("chrf", "bleu"), default="chrf", help="sentence metric (sacrebleu)")
+    g.add_argument("--below", type=float, metavar="X",
+                   help="count a row as failed only if it differs from every reference AND its metric is below X")
+    g.add_argument("--margin", type=float, default=None, metavar="M",
+                   help="scores closer than M are a tie (default 1e-4)")
+    g.add_argument("--buckets", default=None, metavar="EDGES",
+                   help="lower edges of the length buckets (default 1,11,21,31,41)")
+    g.add_argument("--bucket-by", choices=("ref-words", "source-words", "ref-tokens", "source-tokens"),
+                   default="ref-words", help="what the buckets measure (default ref-words)")
+
+    g = r.add_argument_group("what a wider beam or another length penalty would change")
+    g.add_argument("--widen", metavar="WIDTHS",
+                   help="re-decode failed rows at these beam widths, e.g. 4,8,16 or x2,x4 (multiples)")
+    g.add_argument("--beam-curve", type=int, metavar="MAX",
+                   help="corpus metric and decode time at beam widths 1..MAX")
+    g.add_argument("--alpha-grid", metavar="LIST", help="alphas to re-score with (default 0,0.2,...,1.2)")
+    g.add_argument("--redecode-alpha", metavar="LIST", help="also re-decode the dev set at these alphas")
+    g.add_argument("--max-rows", type=int, metavar="N", help="run sweeps on a seeded sample of N rows")
+    g.add_argument("--seed", type=int, default=0, help="seed for samples (default 0)")
+    g.add_argument("--where-lost", action="store_true",
+                   help="for search rows, find the step where the reference left the beam and the "
+                   "smallest width that keeps it")
+    g.add_argument("--exact", action="store_true",
+                   help="exact search (bounded depth-first) on short failed rows, with a budget per row")
+
+    g = r.add_argument_group("run")
+    g.add_argument("--out", metavar="DIR", help="output folder (default reports/<dev-set name>)")
+    g.add_argument("--token-budget", type=int, default=4096, help="tokens per scoring batch (default 4096)")
+    g.add_argument("--no-cache", action="store_true", help="do not read or write the score cache")
+    g.add_argument("--cache-dir", metavar="DIR", help="score cache folder (default <out>/.cache)")
+    g.add_argument("--quiet", action="store_true", help="no progress bars")
+    g.add_argument("--debug", action="store_true", help="show tracebacks")
+
+    rep = sub.add_parser("report", help="re-render report.html from a run directory (no model needed)")
+    rep.add_argument("run_dir", metavar="RUN_DIR")
+    rep.add_argument("--debug", action="store_true", help="show tracebacks")
+
+    b = sub.add_parser("bench", help="benchmark scoring against a naive baseline and generate", add_help=False)
+    b.add_argument("bench_args", nargs=argparse.REMAINDER)
+    return p
+
+
+def _float_list(text: str | None, name: str) -> list[float] | None:
+    if text is None:
+        return None
+    try:
+        return [float(x) for x in text.split(",") if x.strip()]
+    except ValueError:
+        raise OptionError(f"{name} must be numbers separated by commas, got {text!r}") from None
+
+
+def _columns(pairs: list[str]) -> dict[str, str]:
+    out = {}
+    for pair in pairs:
+        if "=" not in pair:
+            raise OptionError(f"--column expects OURS=THEIRS, got {pair!r}")
+        ours, theirs = pair.split("=", 1)
+        ours = ours.strip()
+        if ours not in ("source", "reference", "output", "id"):
+            raise OptionError(f"--column: unknown column {ours!r} (source, reference, output or id)")
+        out[ours] = theirs.strip()
+    return out
+
+
+def cmd_run(a: argparse.Namespace) -> int:
+    from .analysis import parse_edges
+    from .pipeline import DEFAULT_MARGIN, TriageOptions
+
+    if not a.data and not a.source:
+        raise OptionError("give the dev set: --data FILE, or --source F --reference F [--output F]")
+    if a.data and (a.source or a.reference or a.output):
+        raise OptionError("give either --data or --source/--reference/--output, not both")
+    if a.source and not a.reference:
+        raise OptionError("--source needs at least one --reference file")
+    try:
+        edges = parse_edges(a.buckets) if a.buckets else None
+    except ValueError as exc:
+        raise OptionError(str(exc)) from None
+    if a.beam is not None and a.beam < 1:
+        raise OptionError(f"--beam must be at least 1, got {a.beam}")
+
+    from .devset import read_devset
+
+    t0 = time.perf_counter()
+    dev = read_devset(a.data, source=a.source, references=a.reference or None, output=a.output,
+                      columns=_columns(a.column) or None, fmt=a.format)
+    out_dir = Path(a.out) if a.out else Path("reports") / dev.name
+
+    if a.threads:
+        import torch
+
+        torch.set_num_threads(a.threads)
+    from .pipeline import model_settings
+    from .plugins import load_model
+
+    model = load_model(a.model, device=a.device, allow_pickle=a.allow_pickle,
+                       trust_remote_code=a.trust_remote_code)
+    try:
+        settings = model_settings(model, beam=a.beam, alpha=a.alpha, penalty=a.penalty,
+                                  max_new_tokens=a.max_new_tokens, early_stopping=a.early_stopping,
+                                  source_prefix=a.prefix)
+    except ValueError as exc:
+        raise OptionError(str(exc)) from None
+    options = TriageOptions(metric=a.metric, below=a.below,
+                            margin=DEFAULT_MARGIN if a.margin is None else a.margin,
+                            bucket_by=a.bucket_by, token_budget=a.token_budget, progress=not a.quiet)
+    if edges:
+        options.edges = edges
+    if not a.no_cache:
+        options.cache_dir = Path(a.cache_dir) if a.cache_dir else out_dir / ".cache"
+    from .pipeline import model_info, run_triage
+
+    info = model_info(model, a.model)
+    result = run_triage(model, dev, settings, options, model_info=info)
+
+    import importlib.util
+
+    if importlib.util.find_spec("triage.sweeps") is not None:
+        from .sweeps import parse_widths, run_sweeps
+
+        try:
+            widths = parse_widths(a.widen, settings.beam) if a.widen else None
+        except ValueError as exc:
+            raise OptionError(f"--widen: {exc}") from None
+        extra = run_sweeps(model, result, widen=widths, beam_curve_max=a.beam_curve,
+                           alphas=_float_list(a.alpha_grid, "--alpha-grid"),
+                           redecode_alpha=_float_list(a.redecode_alpha, "--redecode-alpha"),
+                           max_rows=a.max_rows, seed=a.seed, progress=not a.quiet)
+        result.summary.update(extra)
+    if a.where_lost or a.exact:
+        from .search_checks import run_search_checks
+
+        run_search_checks(model, result, where_lost=a.where_lost, exact=a.exact, progress=not a.quiet)
+    from .analysis import recommend
+
+    result.summary["recommendation"] = recommend(result.summary["counts"], result.summary)
+    from .outputs import write_run
+
+    run_info = {
+        "created": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+        "elapsed_s": round(time.perf_counter() - t0, 2),
+        "command": "triage " + " ".join(sys.argv[1:]),
+        "cache": result.cache,
+    }
+    write_run(result, out_dir, run_info)
+    _print_summary(result, out_dir, run_info)
+    return 0
+
+
+def _print_summary(result, out_dir: Path, run_info: dict) -> None:
+    s = result.summary
+    c = s["counts"]
+    print(f"triage {__version__}: {s['data']['rows']} rows, objective {s['objective']}")
+    print("  " + ", ".join(f"{k} {v}" for k, v in c.items()))
+    ss = s["search_share"]
+    if ss["compared"]:
+        lo, hi = ss["interval95"]
+        print(f"  search-side share of compared failures: {ss['share']:.0%} (95% interval {lo:.0%}-{hi:.0%})")
+    rec = s["recommendation"]
+    print(f"  recommendation: {rec['action']}: {rec['because']}")
+    cache = result.cache
+    if cache:
+        print(f"  scores: {cache.get('hits', 0)} rows from the cache, {cache.get('misses', 0)} scored")
+    print(f"  wrote {out_dir}/report.html (and verdicts.csv, summary.json, tokens.jsonl) in {run_info['elapsed_s']:.1f} s")
+
+
+def cmd_report(a: argparse.Namespace) -> int:
+    from .report import rerender
+
+    run_dir = Path(a.run_dir)
+    if not (run_dir / "summary.json").is_file() or not (run_dir / "verdicts.csv").is_file():
+        raise TriageError("not a run directory (needs summary.json and verdicts.csv)", path=str(run_dir))
+    out = rerender(run_dir)
+    print(f"wrote {out}")
+    return 0
+
+
+def main(argv: list[str] | None = None) -> int:
+    argv = list(sys.argv[1:] if argv is None else argv)
+    if argv[:1] == ["bench"]:
+        from .bench import main as bench_main
+
+        return int(bench_main(argv[1:]) or 0)
+    parser = build_parser()
+    a = parser.parse_args(argv)
+    if a.command is None:
+        parser.print_help()
+        return 2
+    debug = getattr(a, "debug", False)
+    try:
+        if a.command == "run":
+            return cmd_run(a)
+        if a.command == "report":
+            return cmd_report(a)
+    except TriageError as exc:
+        if debug:
+            raise
+        print(f"triage: error: {exc.one_line()}", file=sys.stderr)
+        return exc.exit_code
+    except KeyboardInterrupt as exc:
+        done = f" ({exc})" if str(exc) else ""
+        print(f"triage: interrupted{done}; the previous outputs are left as they were; "
+              "a rerun takes the scored rows from the cache", file=sys.stderr)
+        return 130
+    except BrokenPipeError:
+        os._exit(1)
+    return 2
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
