@@ -86,7 +86,8 @@ def recommend(counts: dict[str, int], evidence: dict[str, Any] | None = None, mi
     """The recommended action and the numbers it rests on.
 
     Without sweep evidence the rule reads the verdict mix alone; with evidence from wider
-    beams or other length penalties (see sweeps.py) it asks whether the change would pay.
+    beams or other length penalties (the "widen", "length_penalty" and "beam_curve" sections
+    that sweeps.py writes, see SWEEPS-SCHEMA.md) it asks whether the change would pay.
     """
     evidence = evidence or {}
     k, n = search_share(counts)
@@ -99,52 +100,103 @@ def recommend(counts: dict[str, int], evidence: dict[str, Any] | None = None, mi
             "missing": ["more failed rows"],
         }
     s_share, m_share = k / n, model / n
-    lp = evidence.get("length_penalty")
-    if lp and lp.get("flip_share", 0) >= 0.3 and lp.get("short_share", 0) >= 0.5 and m_share >= 0.5:
-        return {
-            "action": "tune-length-penalty",
-            "because": (
-                f"{m_share:.0%} of compared failures are model-side, {lp['short_share']:.0%} of them shorter "
-                f"than the reference, and {lp['flip_share']:.0%} flip to search-side at "
-                f"{lp['best_penalty']} alpha {lp['best_alpha']:g}"
-            ),
-        }
     widen = evidence.get("widen")
+    lp = evidence.get("length_penalty")
+    best = _best_width(widen)
+    metric = (widen or {}).get("metric", "metric")
+
+    # ---- length penalty: model-side failures that are short and flip at another alpha
+    lp_text = ""
+    if lp and lp.get("best") and lp.get("brevity"):
+        b, brev = lp["best"], lp["brevity"]
+        flip, short = b.get("flip_share"), brev.get("short_share")
+        lp_text = (f"the best penalty ({b['penalty']} alpha {b['alpha']:g}) flips {flip or 0:.0%} of "
+                   f"model-side rows to search-side")
+        if m_share >= 0.5 and (flip or 0) >= 0.3 and (short or 0) >= 0.5:
+            because = (f"{m_share:.0%} of compared failures are model-side ({model} of {n}), {short:.0%} of them "
+                       f"shorter than the reference (mean length ratio {brev.get('length_ratio') or 0:.2f}), and "
+                       f"{flip:.0%} flip to search-side at {b['penalty']} alpha {b['alpha']:g}")
+            done = [r for r in lp.get("redecode") or [] if r.get("penalty") == b["penalty"]]
+            if done:
+                r = max(done, key=lambda r: (r["corpus_delta"], -abs(r["alpha"] - b["alpha"])))
+                because += (f"; decoding at alpha {r['alpha']:g} changes {metric_name(lp, widen)} by "
+                            f"{r['corpus_delta']:+.1f} on {r['rows']} rows")
+                if r["corpus_delta"] > 0:
+                    return {"action": "tune-length-penalty", "because": because}
+                lp_text += f", but decoding at alpha {r['alpha']:g} changes the metric by {r['corpus_delta']:+.1f}"
+            else:
+                return {"action": "tune-length-penalty", "because": because,
+                        "missing": [f"decoding at {b['penalty']} alpha {b['alpha']:g} to confirm (--redecode-alpha)"]}
+
+    # ---- search-side failures: does a wider beam recover them, and does it pay?
+    worse = ""
+    if best and best["model_rows"]["worse"]:
+        mr = best["model_rows"]
+        worse = f"; it lowers {metric} on {mr['worse']} of {mr['rows']} model-side rows"
+    if best:
+        numbers = (f"widen to {best['beam']}: resolves {best['resolved_share']:.0%} of search-side rows, "
+                   f"{best['corpus_delta']:+.1f} {metric} on the dev set, {best['time_ratio'] or 0:.1f}x decode time")
     if s_share >= 0.5:
-        if widen:
-            best = max(widen, key=lambda w: w["resolved_share"])
-            if best["resolved_share"] >= 0.25:
-                return {
-                    "action": "widen-beam",
-                    "because": (
-                        f"widen to {best['beam']}: resolves {best['resolved_share']:.0%} of search-side rows, "
-                        f"{best['corpus_delta']:+.1f} {best['metric']} on the dev set, "
-                        f"{best['time_ratio']:.1f}x decode time"
-                    ),
-                }
+        if widen is None:
             return {
-                "action": "inconclusive",
-                "because": (
-                    f"{s_share:.0%} of compared failures are search-side, but widening to {best['beam']} "
-                    f"resolves only {best['resolved_share']:.0%} of them"
-                ),
-                "missing": ["a wider beam or another length penalty that recovers the references"],
+                "action": "widen-beam",
+                "because": f"{s_share:.0%} of compared failures are search-side ({k} of {n}); not yet confirmed "
+                "by re-decoding (run with --widen)",
+                "missing": ["re-decoding with a wider beam (--widen)"],
             }
+        if best is None:
+            return {"action": "inconclusive",
+                    "because": f"{s_share:.0%} of compared failures are search-side, but no wider beam was measured",
+                    "missing": ["re-decoding with a wider beam (--widen)"]}
+        if best["resolved_share"] >= 0.25 and best["corpus_delta"] >= 0:
+            return {"action": "widen-beam", "because": numbers + worse}
+        if best["resolved_share"] >= 0.25:
+            return {"action": "inconclusive",
+                    "because": f"{s_share:.0%} of compared failures are search-side and {numbers}{worse}",
+                    "missing": ["a width or length penalty that resolves them without lowering the metric"]}
         return {
-            "action": "widen-beam",
-            "because": f"{s_share:.0%} of compared failures are search-side ({k} of {n}); not yet confirmed "
-            "by re-decoding (run with --widen)",
-            "missing": ["re-decoding with a wider beam (--widen)"],
+            "action": "inconclusive",
+            "because": (f"{s_share:.0%} of compared failures are search-side, but widening to {best['beam']} "
+                        f"resolves only {best['resolved_share']:.0%} of them"),
+            "missing": ["a wider beam or another length penalty that recovers the references"],
         }
     if m_share >= 0.5:
-        because = f"{m_share:.0%} of compared failures are model-side ({model} of {n})"
-        if widen:
-            best = max(widen, key=lambda w: w["resolved_share"])
-            because += f" and widening to {best['beam']} resolves {best['resolved_share']:.0%} of search-side rows"
+        because = f"fix the model: {m_share:.0%} of compared failures are model-side ({model} of {n})"
+        if best:
+            because += (f" and widening to {best['beam']} resolves {best['resolved_share']:.0%} of search-side rows "
+                        f"({best['corpus_delta']:+.1f} {metric})")
+        if lp_text:
+            because += "; " + lp_text
         return {"action": "fix-model", "because": because}
-    return {
-        "action": "inconclusive",
-        "because": f"failures split: {s_share:.0%} search-side, {m_share:.0%} model-side of {n} compared "
-        f"({failed} failed rows in all)",
-        "missing": ["re-decoding with a wider beam (--widen)", "a length-penalty sweep"],
-    }
+    if best and best["resolved_share"] >= 0.5 and best["corpus_delta"] > 0:
+        return {"action": "widen-beam",
+                "because": f"failures split ({s_share:.0%} search-side, {m_share:.0%} model-side of {n}); "
+                + numbers + worse}
+    missing = []
+    if widen is None:
+        missing.append("re-decoding with a wider beam (--widen)")
+    if lp is None:
+        missing.append("a length-penalty sweep")
+    because = (f"failures split: {s_share:.0%} search-side, {m_share:.0%} model-side of {n} compared "
+               f"({failed} failed rows in all)")
+    if best:
+        because += "; " + numbers
+    if lp_text:
+        because += "; " + lp_text
+    return {"action": "inconclusive", "because": because,
+            "missing": missing or ["a clearer split of failures (more rows, or a --below threshold)"]}
+
+
+def metric_name(*sections: dict[str, Any] | None) -> str:
+    for s in sections:
+        if s and s.get("metric"):
+            return str(s["metric"])
+    return "metric"
+
+
+def _best_width(widen: dict[str, Any] | None) -> dict[str, Any] | None:
+    """The measured width resolving most search-side rows (the narrower one on ties)."""
+    entries = [w for w in (widen or {}).get("widths", []) if w.get("resolved_share") is not None]
+    if not entries:
+        return None
+    return max(entries, key=lambda w: (w["resolved_share"], -w["beam"]))
