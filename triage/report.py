@@ -1,33 +1,388 @@
-"""The HTML report: one self-contained page rendered from a run's tables (no model needed)."""
+"""The HTML report: one self-contained page rendered from a run's tables (no model needed).
+
+The page loads nothing from anywhere: styles and charts are inline, a Content-Security-Policy
+forbids every other source, and the one inline script (filtering and sorting the row table) is
+allowed by its sha256 hash, computed here at render time. Every text is escaped by jinja2's
+autoescape. Without scripts the page reads the same, only the filter controls stay hidden.
+"""
 
 from __future__ import annotations
 
+import base64
+import hashlib
 import json
+import math
 from pathlib import Path
 from typing import Any
 
 import pandas as pd
+from markupsafe import Markup
+
+from . import charts
+from .settings import DecoderSettings
+
+VERDICT_ORDER = ("search", "model", "tie", "blocked", "skipped", "correct")
+COMPARED = ("search", "model", "tie")
+
+ACTIONS = {
+    "widen-beam": "Widen the beam",
+    "fix-model": "Work on the model, not the decoder",
+    "tune-length-penalty": "Tune the length penalty",
+    "inconclusive": "No clear action yet",
+}
+ACTION_MEANING = {
+    "widen-beam": "the model already prefers the reference in most failed rows; a wider search should find it",
+    "fix-model": "the model itself scores its wrong output above the reference; a wider beam will not help",
+    "tune-length-penalty": "the failures come from the length penalty pushing outputs too short or too long",
+    "inconclusive": "the evidence does not point one way",
+}
+PENALTY_TEXT = {
+    "power": "score = sum of log-probs / len^alpha (len: target tokens incl. end token)",
+    "gnmt": "score = sum of log-probs / ((5 + len) / 6)^alpha",
+    "none": "score = sum of log-probs (no length penalty)",
+}
+SETTINGS_LABELS = [
+    ("beam", "beam width"),
+    ("penalty", "length penalty form"),
+    ("alpha", "length penalty alpha"),
+    ("early_stopping", "early stopping"),
+    ("max_new_tokens", "most new tokens"),
+    ("max_length", "most tokens (incl. start)"),
+    ("min_length", "fewest tokens"),
+    ("min_new_tokens", "fewest new tokens"),
+    ("no_repeat_ngram_size", "no repeated n-grams of size"),
+    ("encoder_no_repeat_ngram_size", "no n-grams repeated from the source, size"),
+    ("repetition_penalty", "repetition penalty"),
+    ("bad_words_ids", "banned token sequences"),
+    ("forced_bos_token_id", "forced first token id"),
+    ("forced_eos_token_id", "forced end token id"),
+    ("decoder_start_token_id", "decoder start token id"),
+    ("eos_token_ids", "end token ids"),
+    ("pad_token_id", "padding token id"),
+    ("source_prefix", "source prefix"),
+    ("origin", "settings taken from"),
+]
+MODEL_LABELS = [("path", "model directory"), ("sha256", "sha256 of the model files"),
+                ("fingerprint", "fingerprint (sha256 of the weights)"), ("tokenizer", "tokenizer")]
+DATA_LABELS = [("path", "data file"), ("sha256", "sha256 of the data file"), ("format", "format"),
+               ("rows", "rows read"), ("outputs", "outputs")]
+SWEEP_KEYS = (("widen", "Wider beams"), ("beam_curve", "Score by beam width"),
+              ("length_penalty", "Other length penalties"), ("exact", "Exact search"))
+COLUMN_LABELS = {
+    "beam": "beam width", "resolved_share": "search-side rows resolved", "resolved": "resolved rows",
+    "corpus_delta": "change in corpus metric", "time_ratio": "decode time (x)", "metric": "metric",
+    "flip_share": "model-side rows that flip", "short_share": "model-side outputs shorter than reference",
+    "best_penalty": "best penalty form", "best_alpha": "best alpha", "alpha": "alpha", "penalty": "penalty form",
+}
 
 
+# ------------------------------------------------------------------------ formatting
+def _finite(x: Any) -> bool:
+    try:
+        return x is not None and not pd.isna(x) and math.isfinite(float(x))
+    except (TypeError, ValueError):
+        return False
+
+
+def fmt_num(x: Any, digits: int = 2) -> str:
+    if x is None or (isinstance(x, float) and math.isnan(x)):
+        return "—"
+    try:
+        if pd.isna(x):
+            return "—"
+    except (TypeError, ValueError):
+        pass
+    if isinstance(x, bool):
+        return "yes" if x else "no"
+    if isinstance(x, int):
+        return str(x)
+    try:
+        v = float(x)
+    except (TypeError, ValueError):
+        return str(x)
+    if math.isinf(v):
+        return "-inf" if v < 0 else "+inf"
+    if v == int(v) and abs(v) < 1e15 and digits == 0:
+        return str(int(v))
+    return f"{v:.{digits}f}"
+
+
+def fmt_pct(x: Any, digits: int = 1) -> str:
+    return f"{float(x) * 100:.{digits}f}%" if _finite(x) else "—"
+
+
+def fmt_interval(iv: Any) -> str:
+    if not iv or len(iv) != 2 or not (_finite(iv[0]) and _finite(iv[1])):
+        return "—"
+    return f"{fmt_pct(iv[0])} – {fmt_pct(iv[1])}"
+
+
+def fmt_value(x: Any) -> str:
+    """Any summary value as short text (generic tables for keys the report does not know)."""
+    if isinstance(x, bool) or x is None:
+        return {True: "yes", False: "no", None: "—"}[x]
+    if isinstance(x, int):
+        return str(x)
+    if isinstance(x, float):
+        return f"{x:.6g}"
+    if isinstance(x, (list, tuple)):
+        return ", ".join(fmt_value(v) for v in x) if all(not isinstance(v, (dict, list)) for v in x) \
+            else json.dumps(x, ensure_ascii=False)
+    if isinstance(x, dict):
+        return json.dumps(x, ensure_ascii=False, default=str)
+    return str(x)
+
+
+def _get(d: Any, path: str) -> Any:
+    for part in path.split("."):
+        if isinstance(d, dict):
+            d = d.get(part)
+        elif isinstance(d, list) and part.isdigit() and int(part) < len(d):
+            d = d[int(part)]
+        else:
+            return None
+    return d
+
+
+def _num_markup(summary: dict[str, Any]):
+    """num(path, kind): the value at `path` in summary.json, shown formatted, tagged with its path."""
+
+    def num(path: str, kind: str = "int") -> Markup:
+        v = _get(summary, path)
+        text = {"int": lambda x: fmt_num(x, 0), "pct": fmt_pct, "float": lambda x: fmt_num(x, 3)}[kind](v)
+        raw = "" if v is None else json.dumps(v)
+        return Markup('<span class="n" data-key="{}" data-value="{}">{}</span>').format(path, raw, text)
+
+    return num
+
+
+# ------------------------------------------------------------------------ generic tables
+def generic_table(obj: Any) -> dict[str, Any]:
+    """A summary value of unknown shape as {kind: kv|table|text, ...} for the template."""
+    if isinstance(obj, list) and obj and all(isinstance(r, dict) for r in obj):
+        cols: list[str] = []
+        for r in obj:
+            cols += [k for k in r if k not in cols]
+        return {"kind": "table", "cols": [(c, COLUMN_LABELS.get(c, c.replace("_", " "))) for c in cols],
+                "rows": [[_cell(c, r.get(c)) for c in cols] for r in obj]}
+    if isinstance(obj, dict):
+        return {"kind": "kv", "items": [(COLUMN_LABELS.get(k, str(k).replace("_", " ")), _cell(k, v))
+                                        for k, v in obj.items()]}
+    return {"kind": "text", "text": fmt_value(obj)}
+
+
+def _cell(key: str, v: Any) -> str:
+    if isinstance(v, float) and (key.endswith("_share") or key.endswith("share")):
+        return fmt_pct(v)
+    return fmt_value(v)
+
+
+# ------------------------------------------------------------------------ rows
+def _side(rec: dict[str, Any] | None) -> dict[str, Any] | None:
+    if not rec:
+        return None
+    pieces = list(rec.get("pieces") or [])
+    lps = list(rec.get("logprobs") or [])
+    ids = list(rec.get("ids") or [])
+    return {"pieces": pieces, "logprobs": lps, "ids": ids}
+
+
+def _lp(x: Any) -> float:
+    return float(x) if x is not None else -math.inf
+
+
+def token_view(tok: dict[str, Any] | None) -> dict[str, Any] | None:
+    """Side-by-side positions, the first position where reference and output differ, the weakest
+    reference token (lowest log-prob; a forbidden token, minus infinity, counts as lowest)."""
+    if not tok:
+        return None
+    ref, out = _side(tok.get("reference")), _side(tok.get("output"))
+    if ref is None and out is None:
+        return None
+    rl = len(ref["pieces"]) if ref else 0
+    ol = len(out["pieces"]) if out else 0
+    diverge = None
+    if ref and out:
+        ra, oa = ref["ids"] or ref["pieces"], out["ids"] or out["pieces"]
+        for i in range(min(rl, ol)):
+            if ra[i] != oa[i]:
+                diverge = i
+                break
+        if diverge is None and rl != ol:
+            diverge = min(rl, ol)
+    worst = None
+    if ref and ref["logprobs"]:
+        worst = min(range(len(ref["logprobs"])), key=lambda i: _lp(ref["logprobs"][i]))
+    rows = []
+    for i in range(max(rl, ol)):
+        rows.append((
+            i + 1,
+            ref["pieces"][i] if i < rl else None, _lpt(ref["logprobs"], i) if ref and i < rl else "",
+            out["pieces"][i] if i < ol else None, _lpt(out["logprobs"], i) if out and i < ol else "",
+            ("d" if i == diverge else "") + (" w" if i == worst else ""),
+        ))
+    return {"rows": rows, "diverge": diverge, "worst": worst, "has_ref": ref is not None, "has_out": out is not None}
+
+
+def _lpt(lps: list[Any], i: int) -> str:
+    if i >= len(lps):
+        return ""
+    return "-inf" if lps[i] is None else f"{float(lps[i]):.2f}"
+
+
+def _row_extras(r: dict[str, Any], tok: dict[str, Any] | None) -> list[tuple[str, str]]:
+    """Optional per-row results from other stages: lost_at* (where the beam dropped the reference), exact*."""
+    extras = []
+    for k, v in r.items():
+        if (k.startswith("lost_at") or k.startswith("exact")) and not (v is None or (isinstance(v, float) and math.isnan(v))) \
+                and v != "":
+            extras.append((k.replace("_", " "), fmt_value(v)))
+    for k in ("lost_at", "exact"):
+        if tok and isinstance(tok.get(k), dict):
+            for kk, vv in tok[k].items():
+                extras.append((f"{k.replace('_', ' ')} {kk}", fmt_value(vv)))
+        elif tok and tok.get(k) is not None:
+            extras.append((k.replace("_", " "), fmt_value(tok[k])))
+    return extras
+
+
+def _rows(verdicts: pd.DataFrame, tokens: list[dict[str, Any]], metric: str,
+          settings: DecoderSettings | None) -> list[dict[str, Any]]:
+    by_id = {str(t.get("id")): t for t in tokens}
+    failed = verdicts[verdicts["verdict"] != "correct"] if len(verdicts) else verdicts
+    out = []
+    for r in failed.to_dict("records"):
+        tok = by_id.get(str(r.get("id")))
+        gap = r.get("score_gap")
+        row = dict(r)
+        row.update(
+            id=str(r.get("id")),
+            gap=gap if _finite(gap) else None,
+            gap_text=fmt_num(gap, 3),
+            gap_attr=f"{float(gap):.6g}" if _finite(gap) else "",
+            metric_value=r.get(metric),
+            metric_text=fmt_num(r.get(metric), 1),
+            tokens=token_view(tok),
+            extras=_row_extras(r, tok),
+            ref_pen=_penalty(settings, r.get("ref_len")),
+            out_pen=_penalty(settings, r.get("out_len")),
+        )
+        out.append(row)
+    return out
+
+
+def _penalty(settings: DecoderSettings | None, length: Any) -> str:
+    if settings is None or not _finite(length):
+        return ""
+    return f"{settings.length_penalty(max(int(length), 1)):.4g}"
+
+
+# ------------------------------------------------------------------------ the page
 def _env():
-    from jinja2 import Environment, PackageLoader, select_autoescape
+    from jinja2 import Environment, PackageLoader, StrictUndefined, select_autoescape  # noqa: F401
 
-    return Environment(loader=PackageLoader("triage", "templates"), autoescape=select_autoescape(default=True))
+    env = Environment(loader=PackageLoader("triage", "templates"), autoescape=select_autoescape(default=True),
+                      trim_blocks=True, lstrip_blocks=True)
+    env.filters.update(num=fmt_num, pct=fmt_pct, interval=fmt_interval, value=fmt_value)
+    return env
+
+
+def _script(env) -> tuple[Markup, str]:
+    src = env.loader.get_source(env, "report.js")[0].strip()
+    if "</" in src:
+        raise ValueError("report.js must not contain '</'")
+    digest = base64.b64encode(hashlib.sha256(src.encode("utf-8")).digest()).decode("ascii")
+    return Markup(src), f"sha256-{digest}"
+
+
+def _settings(summary: dict[str, Any]) -> DecoderSettings | None:
+    try:
+        return DecoderSettings.from_dict(summary.get("settings") or {})
+    except (TypeError, ValueError):
+        return None
+
+
+def _unset(v: Any) -> bool:
+    return v is None or v == "" or v == [] or v == ()
+
+
+def _labelled(d: Any, labels: list[tuple[str, str]], always: tuple[str, ...] = (),
+              skip_unset: bool = False) -> tuple[list[tuple[str, str, str]], list[str]]:
+    """(key, label, text) for known keys in order, then the unknown ones; and the labels left unset."""
+    d = d if isinstance(d, dict) else {}
+    known = {k for k, _ in labels}
+    pairs = [(k, lab) for k, lab in labels if k in d or k in always]
+    pairs += [(k, str(k).replace("_", " ")) for k in d if k not in known]
+    items, unset = [], []
+    for k, lab in pairs:
+        if skip_unset and _unset(d.get(k)) and k not in always:
+            unset.append(lab)
+        else:
+            items.append((k, lab, fmt_value(d.get(k))))
+    return items, unset
 
 
 def render_report(summary: dict[str, Any], verdicts: pd.DataFrame, tokens: list[dict[str, Any]],
                   run_info: dict[str, Any]) -> str:
-    failed = verdicts[verdicts["verdict"] != "correct"] if len(verdicts) else verdicts
-    return _env().get_template("report.html.j2").render(
-        summary=summary, run=run_info, failed=failed.to_dict("records"), n_rows=len(verdicts),
+    env = _env()
+    script, script_hash = _script(env)
+    summary = summary or {}
+    run_info = run_info or {}
+    options = summary.get("options") or {}
+    metric = options.get("metric") or ("chrf" if "chrf" in verdicts else "bleu")
+    settings = _settings(summary)
+    rows = _rows(verdicts, tokens, metric, settings)
+    counts = summary.get("counts") or {}
+    buckets = summary.get("buckets") or []
+    gaps = [r["gap"] for r in rows if r.get("verdict") in COMPARED]
+    nonfinite = sum(1 for r in rows if r.get("verdict") in COMPARED and r["gap"] is None)
+    rec = summary.get("recommendation") or {}
+    action = rec.get("action", "inconclusive")
+    sweeps = [(key, title, generic_table(summary[key])) for key, title in SWEEP_KEYS if summary.get(key)]
+    s = summary.get("settings") or {}
+    settings_items, settings_unset = _labelled(s, SETTINGS_LABELS, ("beam", "penalty", "alpha"), skip_unset=True)
+    return env.get_template("report.html.j2").render(
+        s=summary, run=run_info, rows=rows, n_rows=len(verdicts), metric=metric,
+        counts=counts, buckets=buckets, verdict_order=[v for v in VERDICT_ORDER if v in counts] or list(VERDICT_ORDER),
+        labels=charts.LABELS, colours=charts.COLOURS, ink=charts.INK,
+        action=action, action_text=ACTIONS.get(action, action), action_meaning=ACTION_MEANING.get(action, ""),
+        because=rec.get("because", ""), missing=rec.get("missing") or [],
+        bars=charts.length_bars(buckets), histogram=charts.gap_histogram(gaps), n_gaps=len(gaps),
+        nonfinite_gaps=nonfinite,
+        model_items=_labelled(summary.get("model"), MODEL_LABELS, ("path", "sha256"))[0],
+        data_items=_labelled(summary.get("data"), DATA_LABELS, ("path", "sha256"))[0],
+        settings_items=settings_items, settings_unset=settings_unset,
+        bucket_verdicts=[v for v in VERDICT_ORDER if any((b.get("counts") or {}).get(v) for b in buckets)
+                         or v in ("search", "model")],
+        penalty_text=PENALTY_TEXT.get(s.get("penalty"), "") if (settings is None or settings.normalizes)
+        else "score = sum of log-probs (no length penalty at these settings)",
+        sweeps=sweeps, bucket_values=sorted({r.get("bucket") for r in rows if r.get("bucket")},
+                                            key=lambda b: [x["range"] for x in buckets].index(b)
+                                            if b in [x["range"] for x in buckets] else 1 << 30),
+        script=script, script_hash=script_hash, num=_num_markup(summary),
     )
 
 
+TEXT_COLUMNS = ("id", "verdict", "reason", "bucket", "source", "reference", "output")
+
+
 def load_run(run_dir: str | Path) -> tuple[dict[str, Any], pd.DataFrame, list[dict[str, Any]], dict[str, Any]]:
+    """The run's files as render_report takes them. Text cells stay text ("NaN" is a word);
+    the other columns become numbers (empty cell: missing) or booleans where they can."""
     run_dir = Path(run_dir)
     summary = json.loads((run_dir / "summary.json").read_text(encoding="utf-8"))
-    verdicts = pd.read_csv(run_dir / "verdicts.csv", dtype={"id": str, "source": str, "reference": str, "output": str},
-                           keep_default_na=False, na_values={c: [""] for c in ("ref_score", "out_score")})
+    verdicts = pd.read_csv(run_dir / "verdicts.csv", dtype=str, keep_default_na=False)
+    for col in verdicts.columns:
+        if col in TEXT_COLUMNS:
+            continue
+        cells = verdicts[col]
+        if len(cells) and cells.isin(["True", "False"]).all():
+            verdicts[col] = cells == "True"
+            continue
+        try:
+            verdicts[col] = pd.to_numeric(cells.replace("", math.nan))
+        except (ValueError, TypeError):
+            pass
     tokens_path = run_dir / "tokens.jsonl"
     tokens = [json.loads(x) for x in tokens_path.read_text(encoding="utf-8").splitlines() if x.strip()] \
         if tokens_path.exists() else []

@@ -1,0 +1,184 @@
+"""Inline SVG charts for the report: small, sharp, no dependency beyond markupsafe.
+
+Colours come from the Okabe-Ito palette (safe for the common forms of colour blindness);
+every colour in a chart is also named by a text label (legend, bar labels, tooltips), so
+nothing depends on telling colours apart. Every text that goes into an SVG is escaped.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from typing import Any
+
+from markupsafe import Markup, escape
+
+# Okabe & Ito (2008), "Color Universal Design" palette; hex values from memory (common practice).
+COLOURS = {
+    "search": "#0072B2",   # blue
+    "model": "#D55E00",    # vermillion
+    "tie": "#CC79A7",      # reddish purple
+    "blocked": "#E69F00",  # orange
+    "skipped": "#000000",  # black
+    "correct": "#009E73",  # bluish green
+}
+# text drawn on top of a fill: white on the dark fills, black on the light ones
+INK = {"search": "#fff", "model": "#fff", "tie": "#000", "blocked": "#000", "skipped": "#fff", "correct": "#fff"}
+LABELS = {
+    "search": "search-side",
+    "model": "model-side",
+    "tie": "tie",
+    "blocked": "blocked by a rule",
+    "skipped": "not scored",
+    "correct": "correct",
+}
+# left to right in the stacked bars: the search share reads straight off the axis
+BAR_ORDER = ("search", "tie", "model", "blocked", "skipped", "correct")
+
+
+def _f(x: float) -> str:
+    """Compact coordinate."""
+    return f"{x:.1f}".rstrip("0").rstrip(".")
+
+
+def _pct(x: float) -> str:
+    return f"{x * 100:.0f}%"
+
+
+def length_bars(buckets: Sequence[dict[str, Any]], order: Sequence[str] = BAR_ORDER) -> Markup:
+    """100%-stacked horizontal bars, one per length bucket, with a legend and the row count."""
+    if not buckets:
+        return Markup("")
+    present = [v for v in order if any(int(b.get("counts", {}).get(v, 0) or 0) for b in buckets)]
+    left, right, bar_w, row_h, bar_h, top = 64, 64, 640, 30, 20, 40
+    width = left + bar_w + right
+    height = top + row_h * len(buckets) + 30
+    out = [f'<svg class="chart" viewBox="0 0 {width} {height}" width="{width}" height="{height}" role="img" '
+           f'aria-labelledby="bars-title"><title id="bars-title">Verdicts by sentence length, as shares of each '
+           f'bucket&#39;s rows</title>']
+    # legend
+    x = left
+    for v in present:
+        label = LABELS[v]
+        out.append(f'<rect x="{x}" y="6" width="12" height="12" fill="{COLOURS[v]}"/>'
+                   f'<text x="{x + 16}" y="16" class="lg">{escape(label)}</text>')
+        x += 16 + 7 * len(label) + 18
+    # grid and axis
+    for t in (0, 0.25, 0.5, 0.75, 1.0):
+        gx = left + bar_w * t
+        out.append(f'<line x1="{_f(gx)}" y1="{top - 6}" x2="{_f(gx)}" y2="{top + row_h * len(buckets)}" class="grid"/>'
+                   f'<text x="{_f(gx)}" y="{top + row_h * len(buckets) + 16}" class="tick" '
+                   f'text-anchor="middle">{_pct(t)}</text>')
+    for i, b in enumerate(buckets):
+        y = top + i * row_h
+        rows = int(b.get("rows") or 0)
+        out.append(f'<text x="{left - 8}" y="{y + bar_h - 5}" class="ax" text-anchor="end">{escape(b.get("range"))}</text>')
+        out.append(f'<text x="{left + bar_w + 8}" y="{y + bar_h - 5}" class="ax">n={rows}</text>')
+        x0 = float(left)
+        for v in present:
+            c = int(b.get("counts", {}).get(v, 0) or 0)
+            if not c or not rows:
+                continue
+            w = bar_w * c / rows
+            tip = f"{b.get('range')}: {LABELS[v]} {c} of {rows} ({_pct(c / rows)})"
+            out.append(f'<rect x="{_f(x0)}" y="{y}" width="{_f(w)}" height="{bar_h}" fill="{COLOURS[v]}">'
+                       f'<title>{escape(tip)}</title></rect>')
+            if w >= 8 * len(str(c)) + 6:
+                out.append(f'<text x="{_f(x0 + w / 2)}" y="{y + bar_h - 6}" fill="{INK[v]}" class="in" '
+                           f'text-anchor="middle">{c}</text>')
+            x0 += w
+    out.append("</svg>")
+    return Markup("".join(out))
+
+
+def nice_step(span: float, target: int = 16) -> float:
+    """A round bin width (1, 2 or 5 times a power of ten) giving about `target` bins."""
+    if not span > 0:
+        return 1.0
+    raw = span / target
+    mag = 10 ** math.floor(math.log10(raw))
+    for m in (1, 2, 5, 10):
+        if raw <= m * mag:
+            return m * mag
+    return 10 * mag
+
+
+def gap_bins(values: Sequence[float], target: int = 16) -> list[tuple[float, float, int]]:
+    """Histogram bins [lo, hi) aligned to multiples of a round width, so that 0 is a bin edge.
+
+    The last bin includes its upper edge. Non-finite values are left out (the caller counts them).
+    """
+    vals = [float(v) for v in values if v is not None and math.isfinite(float(v))]
+    if not vals:
+        return []
+    lo, hi = min(vals), max(vals)
+    step = nice_step(hi - lo, target) if hi > lo else max(abs(lo) / 10, 0.1)
+    start = math.floor(lo / step) * step
+    n = max(1, math.floor((hi - start) / step) + 1)
+    counts = [0] * n
+    for v in vals:
+        k = min(int((v - start) // step), n - 1)
+        counts[k] += 1
+    return [(start + k * step, start + (k + 1) * step, counts[k]) for k in range(n)]
+
+
+def gap_histogram(values: Sequence[float]) -> Markup:
+    """Histogram of score_gap = ref_score - out_score: left of 0 the model prefers its output."""
+    bins = gap_bins(values)
+    if not bins:
+        return Markup("")
+    left, right, plot_w, plot_h, top = 48, 16, 700, 180, 48
+    width, height = left + plot_w + right, top + plot_h + 44
+    lo, hi = bins[0][0], bins[-1][1]
+    if lo > 0:
+        lo = 0.0
+    if hi < 0:
+        hi = 0.0
+    span = hi - lo or 1.0
+    top_count = max(c for _, _, c in bins) or 1
+    peak = top_count * 1.12  # headroom for the count labels
+
+    def sx(v: float) -> float:
+        return left + plot_w * (v - lo) / span
+
+    def sy(c: float) -> float:
+        return top + plot_h - plot_h * c / peak
+
+    out = [f'<svg class="chart" viewBox="0 0 {width} {height}" width="{width}" height="{height}" role="img" '
+           f'aria-labelledby="gap-title"><title id="gap-title">Histogram of the score margin, reference score minus '
+           f'output score</title>']
+    # side labels carry the colour meaning in words
+    out.append(f'<rect x="{left}" y="6" width="12" height="12" fill="{COLOURS["model"]}"/>'
+               f'<text x="{left + 16}" y="16" class="lg">below 0: the model prefers its output (model-side)</text>'
+               f'<rect x="{left}" y="24" width="12" height="12" fill="{COLOURS["search"]}"/>'
+               f'<text x="{left + 16}" y="34" class="lg">0 and above: the model prefers the reference '
+               f'(search-side; within the tie margin: tie)</text>')
+    for t in sorted({0, top_count // 2, top_count}):
+        ty = sy(t)
+        out.append(f'<line x1="{left}" y1="{_f(ty)}" x2="{left + plot_w}" y2="{_f(ty)}" class="grid"/>'
+                   f'<text x="{left - 6}" y="{_f(ty + 4)}" class="tick" text-anchor="end">{t:g}</text>')
+    for a, b, c in bins:
+        if not c:
+            continue
+        kind = "search" if a >= 0 else "model"
+        x, w = sx(a), max(sx(b) - sx(a) - 1, 1)
+        tip = f"margin {a:.3g} to {b:.3g}: {c} row{'s' if c != 1 else ''} ({LABELS[kind]})"
+        out.append(f'<rect x="{_f(x)}" y="{_f(sy(c))}" width="{_f(w)}" height="{_f(top + plot_h - sy(c))}" '
+                   f'fill="{COLOURS[kind]}"><title>{escape(tip)}</title></rect>')
+        if w >= 7 * len(str(c)):
+            out.append(f'<text x="{_f(x + w / 2)}" y="{_f(sy(c) - 3)}" class="tick" text-anchor="middle">{c}</text>')
+    # x axis: a few round ticks, 0 always drawn and marked
+    step = nice_step(span, 6)
+    t = math.ceil(lo / step) * step
+    while t <= hi + step * 1e-9:
+        tx = sx(t)
+        out.append(f'<line x1="{_f(tx)}" y1="{top + plot_h}" x2="{_f(tx)}" y2="{top + plot_h + 4}" class="axl"/>'
+                   f'<text x="{_f(tx)}" y="{top + plot_h + 16}" class="tick" text-anchor="middle">{t:.3g}</text>')
+        t += step
+    zx = sx(0.0)
+    out.append(f'<line x1="{left}" y1="{top + plot_h}" x2="{left + plot_w}" y2="{top + plot_h}" class="axl"/>'
+               f'<line x1="{_f(zx)}" y1="{top - 4}" x2="{_f(zx)}" y2="{top + plot_h}" class="zero"/>')
+    out.append(f'<text x="{left + plot_w / 2}" y="{height - 6}" class="ax" text-anchor="middle">margin = reference '
+               f'score minus output score (rows per bin)</text>')
+    out.append("</svg>")
+    return Markup("".join(out))
