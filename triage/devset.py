@@ -22,10 +22,14 @@ break or a double quote (``"He said ""hi"" twice"``). The reader decides per fil
 
 * no cell starts with a double quote: raw (both dialects give the same cells);
 * a quoted header, or a cell written the quoted way with a doubled quote inside, or a
-  row that only has the right number of cells when quotes are honoured: quoted, and the
-  file must be valid quoted TSV (an unbalanced quote is an error);
+  quoted cell holding a tab or line break, or rows that only have the right number of
+  cells when quotes are honoured: quoted, and the file must be valid quoted TSV (an
+  unbalanced quote is an error);
 * otherwise (quotes at cell starts, but no sign of quoting): raw, quotes kept as text.
   If the file is not valid quoted TSV but is valid raw TSV, it is read raw.
+* a file that is valid both ways but gives different rows (quoted cells spanning lines
+  versus quotes as text) is refused as ambiguous; ``fmt="tsv-raw"`` or ``fmt="tsv-quoted"``
+  names the dialect and skips the detection.
 
 A raw file in which some cell is a whole text wrapped in quotes *and* another cell uses
 doubled quotes is read as quoted; write such data as JSONL to be unambiguous.
@@ -58,6 +62,8 @@ import pandas as pd
 from triage.errors import InputError, OptionError
 
 FORMATS = ("tsv", "csv", "jsonl", "text")
+# accepted as ``fmt`` too: a TSV file read in a named dialect instead of the detected one
+TSV_DIALECTS = {"tsv-raw": "raw", "tsv-quoted": "quoted"}
 _EXTENSIONS = {".tsv": "tsv", ".tab": "tsv", ".csv": "csv", ".jsonl": "jsonl", ".ndjson": "jsonl", ".json": "jsonl"}
 _ROLES = ("id", "source", "reference", "output")
 _EXTRA_REF = re.compile(r"^reference_(\d+)$")
@@ -140,11 +146,14 @@ class _Spec:
     columns: dict[str, str]
     display: str
     name: str
+    tsv_dialect: str | None = None  # "raw" | "quoted" when named, else detected
 
     @classmethod
     def make(cls, path, source, references, output, columns, fmt) -> _Spec:
-        if fmt is not None and fmt not in FORMATS:
-            raise OptionError(f"unknown dev-set format {fmt!r}", hint="use one of: " + ", ".join(FORMATS))
+        if fmt is not None and fmt not in FORMATS and fmt not in TSV_DIALECTS:
+            raise OptionError(
+                f"unknown dev-set format {fmt!r}", hint="use one of: " + ", ".join([*FORMATS, *TSV_DIALECTS])
+            )
         columns = dict(columns or {})
         for key, value in columns.items():
             if key not in _ROLES and not _EXTRA_REF.match(key):
@@ -205,7 +214,9 @@ class _Spec:
             fmt = _EXTENSIONS[suffix]
         if fmt == "text":
             raise OptionError("format 'text' needs source and reference files, not one dev-set file")
-        return cls(fmt, [p], 0, False, {k: v.strip() for k, v in columns.items()}, str(path), p.stem)
+        dialect = TSV_DIALECTS.get(fmt)
+        fmt = "tsv" if dialect else fmt
+        return cls(fmt, [p], 0, False, {k: v.strip() for k, v in columns.items()}, str(path), p.stem, dialect)
 
 
 def _check_file(p: Path) -> None:
@@ -399,7 +410,7 @@ def _tsv_dialect(spec: _Spec) -> str:
     so layout errors surface before any row is handed out."""
     path = spec.files[0]
     name = str(path)
-    flags = {"quote": False, "evidence": False}
+    flags = {"quote": False, "evidence": False, "rows": 0}
 
     def scan() -> Iterator[tuple[int, list[str]]]:
         first = True
@@ -412,6 +423,7 @@ def _tsv_dialect(spec: _Spec) -> str:
                     elif _QUOTED_WITH_DOUBLED.match(cell):
                         flags["evidence"] = True
             first = first and _is_blank(cells)
+            flags["rows"] += not _is_blank(cells)
             yield line, cells
 
     records = scan()
@@ -430,11 +442,12 @@ def _tsv_dialect(spec: _Spec) -> str:
         if raw_error is not None:
             raise raw_error
         return "raw"
-    if raw_error is None and not flags["evidence"]:
-        return "raw"
+    n_quoted = 0
+    cr_inside = False  # a quoted cell holds a carriage return (raw reading keeps it, quotes and all)
     try:
-        for _ in _layout(_quoted_records(_Lines(path), "\t"), name, "tab"):
-            pass
+        for _, cells in _layout(_quoted_records(_Lines(path), "\t"), name, "tab"):
+            n_quoted += 1
+            cr_inside = cr_inside or any("\r" in c for c in cells)
     except InputError as quoted_error:
         if raw_error is None:
             return "raw"  # quotes are ordinary text in this file
@@ -444,7 +457,16 @@ def _tsv_dialect(spec: _Spec) -> str:
         if (raw_error.line or 0) < (quoted_error.line or 0):
             raise raw_error from None
         raise
-    return "quoted"
+    if raw_error is not None or flags["evidence"]:
+        return "quoted"
+    if n_quoted != flags["rows"]:
+        raise InputError(
+            f"the file reads two ways: as {flags['rows'] - 1} rows with quotes as text, or as "
+            f"{n_quoted - 1} rows with quoted cells spanning lines",
+            path=name,
+            hint="name the TSV dialect (format tsv-raw or tsv-quoted), or save the data as JSONL",
+        )
+    return "quoted" if cr_inside else "raw"
 
 
 _QUOTED_WITH_DOUBLED = re.compile(r'^"(?:[^"]|"")*""(?:[^"]|"")*"$', re.S)
@@ -549,7 +571,7 @@ def _table_rows(spec: _Spec, chunk_rows: int, meta: dict) -> Iterator[pd.DataFra
     path = spec.files[0]
     name = str(path)
     sep = "tab" if spec.fmt == "tsv" else "comma"
-    dialect = _tsv_dialect(spec) if spec.fmt == "tsv" else "quoted"
+    dialect = (spec.tsv_dialect or _tsv_dialect(spec)) if spec.fmt == "tsv" else "quoted"
     lines = _Lines(path)
     records = _raw_records(lines) if dialect == "raw" else _quoted_records(lines, "\t" if spec.fmt == "tsv" else ",")
     records = _layout(records, name, sep)
