@@ -193,9 +193,103 @@ class TransformersModel:
                                targets: torch.Tensor) -> torch.Tensor:
         """Log-prob [B, T] of targets[:, t] after decoder_inputs[:, :t+1]: gather minus logsumexp."""
         out = self._forward(state, decoder_inputs, None, use_cache=False)
-        logits = out.logits.float()
-        picked = logits.gather(-1, targets.to(self.device).unsqueeze(-1)).squeeze(-1)
-        return picked - torch.logsumexp(logits, dim=-1)
+        # log_softmax is one fused pass; torch.logsumexp is several times slower on the CPU
+        logp = torch.log_softmax(out.logits.float(), dim=-1)
+        return logp.gather(-1, targets.to(self.device).unsqueeze(-1)).squeeze(-1)
+
+    # -------------------------------------------------------------- scoring only where needed
+    #: most logits held at once by score_positions (floats); bounds memory, keeps matmuls large
+    logits_budget: int = 1 << 25
+
+    def _head(self) -> tuple[torch.Tensor, torch.Tensor | None, float] | None:
+        """(weight, bias, scale) with logits = (decoder_hidden * scale) @ weight.T + bias, or None.
+
+        Checked once against the model's own full forward; a head this formula does not
+        reproduce (within 1e-5) makes score_positions use the full forward instead.
+        """
+        if hasattr(self, "_head_parts"):
+            return self._head_parts
+        self._head_parts = None
+        hf = self.model
+        head = hf.get_output_embeddings()
+        if isinstance(head, torch.nn.Linear) and hasattr(hf, "get_decoder"):
+            bias = getattr(hf, "final_logits_bias", None)
+            if isinstance(bias, torch.Tensor):
+                bias = bias.reshape(-1)
+                if head.bias is not None:
+                    bias = bias + head.bias
+            else:
+                bias = head.bias
+            scale = 1.0
+            if getattr(hf.config, "scale_decoder_outputs", False) or (
+                    getattr(hf.config, "model_type", "") in ("t5", "mt5") and hf.config.tie_word_embeddings):
+                scale = float(hf.config.d_model) ** -0.5
+            parts = (head.weight, bias, scale)
+            g = torch.Generator().manual_seed(0)
+            low = min(3, self.vocab_size - 1)
+            src = torch.randint(low, self.vocab_size, (1, 5), generator=g).tolist()
+            dec = torch.tensor([[self.start_id] + torch.randint(low, self.vocab_size, (3,), generator=g).tolist()])
+            with torch.inference_mode():
+                state = self.encode(src)
+                full = self._forward(state, dec, None, use_cache=False).logits.float()
+                hidden = self._decoder_hidden(state, dec)
+                mine = self._logits(hidden, parts)
+            if mine.shape == full.shape and torch.allclose(mine, full, rtol=0, atol=1e-5):
+                self._head_parts = parts
+        return self._head_parts
+
+    def _decoder_hidden(self, state: dict[str, torch.Tensor], decoder_inputs: torch.Tensor) -> torch.Tensor:
+        out = self.model.get_decoder()(
+            input_ids=decoder_inputs.to(self.device),
+            encoder_hidden_states=state["hidden"],
+            encoder_attention_mask=state["mask"],
+            use_cache=False,
+        )
+        return out.last_hidden_state
+
+    @staticmethod
+    def _logits(hidden: torch.Tensor, parts: tuple[torch.Tensor, torch.Tensor | None, float]) -> torch.Tensor:
+        weight, bias, scale = parts
+        if scale != 1.0:
+            hidden = hidden * scale
+        return torch.nn.functional.linear(hidden, weight, bias).float()
+
+    @torch.inference_mode()
+    def score_positions(self, state: dict[str, torch.Tensor], rows: torch.Tensor, decoder_inputs: torch.Tensor,
+                        picks: torch.Tensor, labels: torch.Tensor) -> torch.Tensor:
+        """Teacher-forced log-probs at chosen positions only.
+
+        decoder_inputs [R, T] are run against encoder rows `rows` [R] of `state`; `picks` [M]
+        are flat positions (r * T + t) into them; `labels` [M, K] the tokens whose log-probs
+        are wanted after each picked position. Returns [M, K]. The output projection and the
+        softmax run only for the picked positions, in chunks of at most `logits_budget` logits.
+        """
+        rows = rows.to(self.device)
+        state = {k: v.index_select(0, rows) for k, v in state.items()}
+        decoder_inputs = decoder_inputs.to(self.device)
+        picks = picks.to(self.device)
+        labels = labels.to(self.device)
+        parts = self._head()
+        out = torch.empty(labels.shape, dtype=torch.float32)
+        if parts is not None:
+            hidden = self._decoder_hidden(state, decoder_inputs)
+            hidden = hidden.reshape(-1, hidden.shape[-1]).index_select(0, picks)
+            step = max(1, self.logits_budget // self.vocab_size)
+            for a in range(0, hidden.shape[0], step):
+                logp = torch.log_softmax(self._logits(hidden[a : a + step], parts), dim=-1)
+                out[a : a + step] = logp.gather(-1, labels[a : a + step]).cpu()
+            return out
+        width = decoder_inputs.shape[1]
+        per = max(1, self.logits_budget // max(1, width * self.vocab_size))
+        for a in range(0, decoder_inputs.shape[0], per):
+            sub = {k: v[a : a + per] for k, v in state.items()}
+            logits = self._forward(sub, decoder_inputs[a : a + per], None, use_cache=False).logits.float()
+            lo, hi = a * width, (a + per) * width
+            sel = ((picks >= lo) & (picks < hi)).nonzero().flatten()
+            if len(sel):
+                logp = torch.log_softmax(logits.reshape(-1, logits.shape[-1]).index_select(0, picks[sel] - lo), -1)
+                out[sel.cpu()] = logp.gather(-1, labels[sel]).cpu()
+        return out
 
 
 def load_transformers_model(name_or_path: str, *, device: str = "cpu", allow_pickle: bool = False,

@@ -9,6 +9,14 @@ back in input order.
 When the settings carry generation rules, the rules (transformers' logits processors) are
 applied to each position's log-probs exactly as the decoder applied them; a target token the
 rules set to minus infinity makes the target `blocked`, and the rule is named.
+
+Without generation rules (and with a model offering ``score_positions``) the targets of a
+row are laid out as a prefix tree: a decoder position is fixed by the tokens before it, so
+a position that several targets share (an output that starts like its reference) is
+projected onto the vocabulary once, and a target whose every position is already in the
+tree (an output that is a prefix of a reference) needs no decoder pass of its own. The
+output projection and softmax run only at the tree's positions; the values are those of
+a plain per-target forward pass and log_softmax.
 """
 
 from __future__ import annotations
@@ -22,6 +30,9 @@ import torch
 from .model_api import SequenceModel, forced_logprobs
 from .rules import apply_rules, build_processors, first_blocking_rule
 from .settings import DecoderSettings
+
+#: most log-probs the rules path holds at once (it keeps whole vocabulary vectors per position)
+RULES_LOGITS_BUDGET = 1 << 26
 
 
 @dataclass
@@ -87,25 +98,35 @@ def score_requests(
     by_row: dict[int, list] = {}
     for job in jobs:
         by_row.setdefault(job[0], []).append(job)
+    fast = _fast_path_usable(model, settings, requests, by_row)
+    score_batch = _score_batch_tree if fast else _score_batch
     order = sorted(by_row, key=lambda i: (max(len(j[2]) for j in by_row[i]), len(requests[i].source_ids)))
     batch: list[int] = []
     width = 0
+    n_targets = 0
     for i in order:
         w = max(max(len(j[2]) for j in by_row[i]), len(requests[i].source_ids))
-        n_targets = len(by_row[i])
-        rows_targets = sum(len(by_row[k]) for k in batch) + n_targets
-        if batch and max(width, w) * rows_targets > token_budget:
-            _score_batch(model, settings, requests, batch, by_row, results)
+        if batch and max(width, w) * (n_targets + len(by_row[i])) > token_budget:
+            score_batch(model, settings, requests, batch, by_row, results)
             if progress:
                 progress(len(batch))
-            batch, width = [], 0
+            batch, width, n_targets = [], 0, 0
         batch.append(i)
         width = max(width, w)
+        n_targets += len(by_row[i])
     if batch:
-        _score_batch(model, settings, requests, batch, by_row, results)
+        score_batch(model, settings, requests, batch, by_row, results)
         if progress:
             progress(len(batch))
     return results  # type: ignore[return-value]
+
+
+def _fast_path_usable(model, settings, requests, by_row) -> bool:
+    """Prefix-tree scoring needs the model's score_positions and no active generation rule."""
+    if not by_row or not hasattr(model, "score_positions"):
+        return False
+    first = next(iter(by_row))
+    return not build_processors(model, settings, _source_tensor(model, [requests[first].source_ids]))
 
 
 def _unscorable(model: SequenceModel, source_ids: list[int], labels: list[int]) -> str | None:
@@ -120,6 +141,14 @@ def _unscorable(model: SequenceModel, source_ids: list[int], labels: list[int]) 
 
 @torch.inference_mode()
 def _score_batch(model, settings, requests, batch, by_row, results) -> None:
+    """Full log-prob vectors at every position, the generation rules applied step by step."""
+    n_targets = sum(len(by_row[i]) for i in batch)
+    width = max(len(j[2]) for i in batch for j in by_row[i])
+    if len(batch) > 1 and n_targets * width * model.vocab_size > RULES_LOGITS_BUDGET:
+        half = len(batch) // 2
+        _score_batch(model, settings, requests, batch[:half], by_row, results)
+        _score_batch(model, settings, requests, batch[half:], by_row, results)
+        return
     state = model.encode([requests[i].source_ids for i in batch])
     index, labels_list, meta = [], [], []
     for b, i in enumerate(batch):
@@ -156,6 +185,85 @@ def _score_batch(model, settings, requests, batch, by_row, results) -> None:
                 blocked_by[k] = first_blocking_rule(processors, prefixes, full[:, t, :], int(labels[k, t]), k)
     for k, job in enumerate(meta):
         _store(settings, results, job, token_lp[k, : len(job[2])].tolist(), blocked_by.get(k))
+
+
+@torch.inference_mode()
+def _score_batch_tree(model, settings, requests, batch, by_row, results) -> None:
+    """Score a batch with each row's targets merged into a prefix tree (no generation rules).
+
+    A tree node is a decoder position, named by the tokens before it; node 0 of a row is the
+    position after the start token. Every node is run through the decoder by one target and
+    projected once; each target reads its token's log-prob at each of its nodes.
+    """
+    state = model.encode([requests[i].source_ids for i in batch])
+    run_rows: list[int] = []          # encoder row of each decoder run
+    run_labels: list[list[int]] = []  # labels of each decoder run
+    node_at: list[tuple[int, int]] = []  # node -> (decoder run, position)
+    node_tokens: list[list[int]] = []    # node -> tokens whose log-probs are wanted there
+    slots: list[dict[int, int]] = []     # node -> {token: column in node_tokens}
+    reads: list[list[tuple[int, int]]] = []  # job -> (node, column) per scored token
+    metas = []
+    for b, i in enumerate(batch):
+        children: dict[tuple[int, int], int] = {}
+        root = -1
+        for job in sorted(by_row[i], key=lambda j: -len(j[2])):
+            labels = job[2]
+            path = []
+            node = -1
+            fresh = False
+            for t, tok in enumerate(labels):
+                if t == 0:
+                    if root < 0:
+                        root = _new_node(node_at, node_tokens, slots)
+                        fresh = True
+                    node = root
+                else:
+                    key = (node, labels[t - 1])
+                    nxt = children.get(key)
+                    if nxt is None:
+                        nxt = children[key] = _new_node(node_at, node_tokens, slots)
+                        fresh = True
+                    node = nxt
+                path.append(node)
+                col = slots[node].get(tok)
+                if col is None:
+                    col = slots[node][tok] = len(node_tokens[node])
+                    node_tokens[node].append(tok)
+            if fresh:
+                r = len(run_labels)
+                run_rows.append(b)
+                run_labels.append(labels)
+                for t, n in enumerate(path):
+                    if node_at[n][0] < 0:
+                        node_at[n] = (r, t)
+            reads.append([(n, slots[n][tok]) for n, tok in zip(path, labels, strict=True)])
+            metas.append(job)
+    if run_labels:
+        width = max(len(x) for x in run_labels)
+        inputs = torch.full((len(run_labels), width), model.pad_id, dtype=torch.long)
+        for r, lab in enumerate(run_labels):
+            inputs[r, 0] = model.start_id
+            inputs[r, 1 : len(lab)] = torch.tensor(lab[:-1], dtype=torch.long)
+        cols = max(len(x) for x in node_tokens)
+        picks = torch.tensor([r * width + t for r, t in node_at], dtype=torch.long)
+        wanted = torch.tensor([x + [x[0]] * (cols - len(x)) for x in node_tokens], dtype=torch.long)
+        lp = model.score_positions(state, torch.tensor(run_rows, dtype=torch.long), inputs, picks, wanted)
+        flat = lp.reshape(-1)
+        index = torch.tensor([n * cols + c for rd in reads for n, c in rd], dtype=torch.long)
+        values = flat.index_select(0, index).tolist() if len(index) else []
+    else:
+        values = []
+    pos = 0
+    for job, rd in zip(metas, reads, strict=True):
+        _store(settings, results, job, values[pos : pos + len(rd)], None)
+        pos += len(rd)
+
+
+def _new_node(node_at, node_tokens, slots) -> int:
+    node_at.append((-1, -1))
+    node_tokens.append([])
+    slots.append({})
+    return len(node_at) - 1
 
 
 def _source_tensor(model, rows: list[list[int]]) -> torch.Tensor:
