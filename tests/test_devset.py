@@ -478,3 +478,18 @@ def test_raw_tsv_keeps_quotes_as_text(tmp_path_factory, rows):
         ds = read_devset(path, fmt="tsv-raw")
     assert [(r["source"], r["references"], r["output"]) for r in records(ds)] == [(s, [r], o) for s, r, o in rows]
     assert list(ds.frame["line"]) == list(range(2, len(rows) + 2))
+
+
+def test_named_tsv_dialect_reads_an_ambiguous_file(tmp_path):
+    # valid raw TSV (2 rows, the quotes are text) and valid quoted TSV (1 row, one cell spanning lines)
+    path = write(tmp_path, "two.tsv", 'source\treference\toutput\n;\t"\t\nN\t"\t\n')
+    with pytest.raises(InputError, match="reads two ways: as 2 rows with quotes as text, or as 1 rows"):
+        read_devset(path)
+    raw = read_devset(path, fmt="tsv-raw")
+    assert raw.fmt == "tsv"
+    assert records(raw) == [
+        {"id": "1", "source": ";", "references": ['"'], "output": "", "line": 2},
+        {"id": "2", "source": "N", "references": ['"'], "output": "", "line": 3},
+    ]
+    quoted = read_devset(path, fmt="tsv-quoted")
+    assert records(quoted) == [{"id": "1", "source": ";", "references": ["\t\nN\t"], "output": "", "line": 2}]

@@ -240,7 +240,6 @@ class _Lines:
         self.path = path
         self.number = 0  # lines handed out so far
         self.hasher = hashlib.sha256()
-        self.n_bytes = 0
 
     def __iter__(self) -> Iterator[str]:
         name = str(self.path)
@@ -277,7 +276,6 @@ class _Lines:
                     )
                 offset += len(raw)
                 yield text
-            self.n_bytes = offset
 
     @property
     def sha256(self) -> str:
@@ -576,7 +574,7 @@ def _table_rows(spec: _Spec, chunk_rows: int, meta: dict) -> Iterator[pd.DataFra
     records = _raw_records(lines) if dialect == "raw" else _quoted_records(lines, "\t" if spec.fmt == "tsv" else ",")
     records = _layout(records, name, sep)
     _, header_cells = next(records)
-    header = _header(header_cells, name, spec, sep)
+    header = _header(header_cells, name)
     idx = _resolve(header, spec.columns, name)
     i_id, i_src, i_ref, i_out = idx["id"], idx["source"], idx["reference"], idx.get("output")
     extra = idx["extra"]
@@ -598,7 +596,7 @@ def _table_rows(spec: _Spec, chunk_rows: int, meta: dict) -> Iterator[pd.DataFra
     yield from _finish(rows, name, meta, [lines], "the file has a header but no rows")
 
 
-def _header(cells: list[str], name: str, spec: _Spec, sep: str) -> list[str]:
+def _header(cells: list[str], name: str) -> list[str]:
     header = [c.strip() for c in cells]
     seen: dict[str, int] = {}
     for i, h in enumerate(header, 1):
