@@ -38,6 +38,7 @@ CSV files are always read with quoting (strict: text after a closing quote is an
 
 Text is never converted to "missing": the cells ``NaN``, ``null``, ``NA`` are text. An empty
 source or reference is an error; an empty output is kept as "" (the model produced nothing).
+In JSONL, ``"output": null`` counts as no output; an output must be given on every line or on none.
 Every input record becomes exactly one row, in input order, with the 1-based line number
 where the record starts. Files are read as UTF-8 (a byte-order mark is dropped, CRLF line
 ends are accepted). Reading streams (see ``iter_devset_chunks``), so a dev set larger than
@@ -354,6 +355,13 @@ def _quoted_records(lines: _Lines, delimiter: str) -> Iterator[tuple[int, list[s
                     line=start,
                     hint='check the quotes in that record; a quote in the text is written as ""',
                 ) from None
+            if "new-line character seen in unquoted field" in text:
+                raise InputError(
+                    "a carriage return (CR) inside a cell that is not quoted",
+                    path=name,
+                    line=lines.number,
+                    hint="put that cell in double quotes, or remove the stray carriage return",
+                ) from None
             raise InputError(f"cannot read the record: {text}", path=name, line=lines.number) from None
         yield start, cells
 
@@ -496,15 +504,16 @@ class _Rows:
                 raise InputError(f"the id is empty ({where['id']})", path=self.name, line=line,
                                  hint="give every row an id, or drop the id column to number rows")
         else:
-            id_ = str(self.count)
-        if id_ in self.seen:
+            id_ = str(self.count)  # row numbers cannot repeat
+        if self.id_given and id_ in self.seen:
             raise InputError(
                 f"id {id_!r} appears twice: on line {self.seen[id_]} and line {line}",
                 path=self.name,
                 line=line,
                 hint="ids must be unique",
             )
-        self.seen[id_] = line
+        if self.id_given:
+            self.seen[id_] = line
         if not source.strip():
             raise InputError(f"the source is empty ({where['source']})", path=self.name, line=line,
                              hint="every row needs a source text; fill the cell or remove the row")
