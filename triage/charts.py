@@ -182,3 +182,43 @@ def gap_histogram(values: Sequence[float]) -> Markup:
                f'score minus output score (rows per bin)</text>')
     out.append("</svg>")
     return Markup("".join(out))
+
+
+def curve(points: Sequence[tuple[Any, Any]], y_label: str, mark: Any = None) -> Markup:
+    """A line over beam widths (x) of one number (y), the current width marked in words."""
+    pts = sorted((float(x), float(y)) for x, y in points
+                 if x is not None and y is not None and math.isfinite(float(x)) and math.isfinite(float(y)))
+    if len(pts) < 2:
+        return Markup("")
+    left, right, plot_w, plot_h, top = 56, 24, 560, 150, 16
+    width, height = left + plot_w + right, top + plot_h + 40
+    xs, ys = [p[0] for p in pts], [p[1] for p in pts]
+    x0, x1 = min(xs), max(xs)
+    y0, y1 = min(ys), max(ys)
+    if y1 == y0:
+        y0, y1 = y0 - 1, y1 + 1
+    pad = (y1 - y0) * 0.1
+    y0, y1 = y0 - pad, y1 + pad
+
+    def sx(x: float) -> float:
+        return left + plot_w * (x - x0) / ((x1 - x0) or 1)
+
+    def sy(y: float) -> float:
+        return top + plot_h - plot_h * (y - y0) / (y1 - y0)
+
+    out = [f'<svg class="chart" viewBox="0 0 {width} {height}" width="{width}" height="{height}" role="img" '
+           f'aria-label="{escape(y_label)} by beam width">']
+    for t in (y0 + pad, (y0 + y1) / 2, y1 - pad):
+        out.append(f'<line x1="{left}" y1="{_f(sy(t))}" x2="{left + plot_w}" y2="{_f(sy(t))}" class="grid"/>'
+                   f'<text x="{left - 6}" y="{_f(sy(t) + 4)}" class="tick" text-anchor="end">{t:.1f}</text>')
+    out.append(f'<polyline fill="none" stroke="{COLOURS["search"]}" stroke-width="2" points="'
+               + " ".join(f"{_f(sx(x))},{_f(sy(y))}" for x, y in pts) + '"/>')
+    for x, y in pts:
+        cur = mark is not None and float(mark) == x
+        out.append(f'<circle cx="{_f(sx(x))}" cy="{_f(sy(y))}" r="{5 if cur else 3}" fill="{COLOURS["search"]}">'
+                   f'<title>beam {x:g}: {escape(y_label)} {y:.2f}{" (current)" if cur else ""}</title></circle>'
+                   f'<text x="{_f(sx(x))}" y="{top + plot_h + 16}" class="tick" text-anchor="middle">'
+                   f'{x:g}{" (current)" if cur else ""}</text>')
+    out.append(f'<text x="{left + plot_w / 2}" y="{height - 4}" class="ax" text-anchor="middle">beam width; '
+               f'line: {escape(y_label)}</text></svg>')
+    return Markup("".join(out))

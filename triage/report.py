@@ -166,7 +166,7 @@ def generic_table(obj: Any) -> dict[str, Any]:
         return {"kind": "table", "cols": [(c, COLUMN_LABELS.get(c, c.replace("_", " "))) for c in cols],
                 "rows": [[_cell(c, r.get(c)) for c in cols] for r in obj]}
     if isinstance(obj, dict):
-        return {"kind": "kv", "items": [(COLUMN_LABELS.get(k, str(k).replace("_", " ")), _cell(k, v))
+        return {"kind": "kv", "pairs": [(COLUMN_LABELS.get(k, str(k).replace("_", " ")), _cell(k, v))
                                         for k, v in obj.items()]}
     return {"kind": "text", "text": fmt_value(obj)}
 
@@ -175,6 +175,111 @@ def _cell(key: str, v: Any) -> str:
     if isinstance(v, float) and (key.endswith("_share") or key.endswith("share")):
         return fmt_pct(v)
     return fmt_value(v)
+
+
+# ------------------------------------------------------------------------ sweeps
+def _table(caption: str, spec: list[tuple[str, str, str]], rows: Any) -> dict[str, Any] | None:
+    """spec: (path in the row, column label, kind: int|pct|num|text). Missing values show as a dash."""
+    if not isinstance(rows, list) or not rows:
+        return None
+    fmt = {"int": lambda x: fmt_num(x, 0), "pct": fmt_pct, "num": lambda x: fmt_num(x, 2),
+           "sec": lambda x: fmt_num(x, 4), "text": fmt_value}
+    body = [[fmt[kind](_get(r, path)) for path, _, kind in spec] for r in rows if isinstance(r, dict)]
+    return {"caption": caption, "cols": [label for _, label, _ in spec], "rows": body}
+
+
+def _widen_block(w: dict[str, Any]) -> dict[str, Any]:
+    m = w.get("metric") or "metric"
+    rows = w.get("rows") or {}
+    cur = w.get("current") or {}
+    lines = [
+        f"Failed rows re-decoded with wider beams: {fmt_value(rows.get('redecoded'))} of "
+        f"{fmt_value(rows.get('compared'))} compared rows ({fmt_value(rows.get('search'))} search-side, "
+        f"{fmt_value(rows.get('model'))} model-side){', a seeded sample' if rows.get('sampled') else ''}.",
+        f"Current beam width {fmt_value(w.get('current_beam'))}: {fmt_num(cur.get('seconds_per_row'), 4)} s per row; "
+        f"it reproduces {fmt_pct(cur.get('reproduced_share'))} of the given outputs. Corpus {m} before: "
+        f"{fmt_num(w.get('corpus_before'), 2)}. References used: {fmt_value(w.get('references'))}.",
+    ]
+    spec = [("beam", "beam width", "int"), ("resolved", "search-side rows resolved", "int"),
+            ("resolved_share", "share resolved", "pct"), ("equals_reference_share", "output equals reference", "pct"),
+            ("changed", "outputs changed", "int"), ("sentence_delta.search", f"{m} change, search-side rows", "num"),
+            ("model_rows.worse", "model-side rows worse", "int"), ("model_rows.better", "model-side rows better", "int"),
+            ("corpus_after", f"corpus {m} after", "num"), ("corpus_delta", f"corpus {m} change", "num"),
+            ("seconds_per_row", "s per row", "sec"), ("time_ratio", "decode time (x current)", "num")]
+    return {"lines": lines, "tables": [t for t in [_table("By beam width", spec, w.get("widths"))] if t],
+            "notes": [str(n) for n in w.get("notes") or []]}
+
+
+def _curve_block(c: dict[str, Any]) -> dict[str, Any]:
+    m = c.get("metric") or "metric"
+    lines = [f"Corpus {m} and decode time over beam widths, on {fmt_value(c.get('rows'))} of "
+             f"{fmt_value(c.get('of'))} rows{' (a seeded sample)' if c.get('sampled') else ''}; current beam width "
+             f"{fmt_value(c.get('current_beam'))}. Width 1 is greedy search (no length penalty)."]
+    spec = [("beam", "beam width", "int"), ("corpus", f"corpus {m}", "num"),
+            ("exact_share", "outputs equal to a reference", "pct"), ("mean_output_tokens", "mean output tokens", "num"),
+            ("seconds_per_row", "s per row", "sec"), ("time_ratio", "decode time (x greedy)", "num")]
+    pts = c.get("points") if isinstance(c.get("points"), list) else []
+    chart = charts.curve([(p.get("beam"), p.get("corpus")) for p in pts if isinstance(p, dict)],
+                         f"corpus {m}", c.get("current_beam"))
+    return {"lines": lines, "chart": chart, "tables": [t for t in [_table("By beam width", spec, pts)] if t],
+            "notes": []}
+
+
+def _penalty_block(lp: dict[str, Any]) -> dict[str, Any]:
+    cur = lp.get("current") or {}
+    best = lp.get("best") or {}
+    lines = [f"Reference and output of the {fmt_value(lp.get('rows'))} compared rows re-scored under other length "
+             f"penalties (no decoding), at beam width {fmt_value(lp.get('rescored_at_beam'))}. Current: "
+             f"{fmt_value(cur.get('penalty'))}, alpha {fmt_value(cur.get('alpha'))}."]
+    if lp.get("note"):
+        lines.append(str(lp["note"]))
+    if best:
+        lines.append(f"Most rows turn from model-side to search-side at {fmt_value(best.get('penalty'))} alpha "
+                     f"{fmt_value(best.get('alpha'))}: {fmt_value(best.get('model_to_search'))} model-side to search-side, "
+                     f"{fmt_value(best.get('search_to_model'))} back ({fmt_pct(best.get('flip_share'))} of model-side rows).")
+    br = lp.get("brevity") or {}
+    if br:
+        lines.append(f"Model-side outputs shorter than their reference: {fmt_value(br.get('shorter'))} of "
+                     f"{fmt_value(br.get('model_rows'))} ({fmt_pct(br.get('short_share'))}); mean length ratio output / "
+                     f"reference {fmt_num(br.get('length_ratio'), 2)} (tokens incl. end token).")
+    grid = [("penalty", "penalty form", "text"), ("alpha", "alpha", "text"), ("counts.search", "search-side", "int"),
+            ("counts.model", "model-side", "int"), ("counts.tie", "tie", "int"),
+            ("model_to_search", "model-side to search-side", "int"), ("search_to_model", "search-side to model-side", "int"),
+            ("flip_share", "share of model-side rows flipped", "pct")]
+    bb = [("range", "length", "text"), ("rows", "rows", "int"), ("model_rows", "model-side rows", "int"),
+          ("short_share", "shorter than reference", "pct"), ("length_ratio", "length ratio, model-side", "num"),
+          ("length_ratio_all", "length ratio, all compared", "num")]
+    rd = [("penalty", "penalty form", "text"), ("alpha", "alpha", "text"), ("rows", "rows", "int"),
+          ("counts.search", "search-side", "int"), ("counts.model", "model-side", "int"),
+          ("counts.correct", "correct", "int"), ("counts_before.correct", "correct before", "int"),
+          ("corpus", "corpus metric", "num"), ("corpus_before", "before", "num"), ("corpus_delta", "change", "num")]
+    tables = [_table("Re-ranking under each penalty", grid, lp.get("grid")),
+              _table("Output length by bucket", bb, br.get("buckets") if isinstance(br, dict) else None),
+              _table("Re-decoded with another penalty", rd, lp.get("redecode"))]
+    return {"lines": lines, "tables": [t for t in tables if t], "notes": []}
+
+
+SWEEP_VIEWS = {"widen": _widen_block, "beam_curve": _curve_block, "length_penalty": _penalty_block}
+
+
+def sweep_blocks(summary: dict[str, Any]) -> list[dict[str, Any]]:
+    """One block per sweep present in summary.json; a shape this report does not know is shown as a plain table."""
+    blocks = []
+    for key, title in SWEEP_KEYS:
+        val = summary.get(key)
+        if not val:
+            continue
+        block = None
+        if key in SWEEP_VIEWS and isinstance(val, dict):
+            try:
+                block = SWEEP_VIEWS[key](val)
+            except (TypeError, ValueError, AttributeError):
+                block = None
+        if block is None:
+            block = {"lines": [], "tables": [], "notes": [], "generic": generic_table(val)}
+        block.update(key=key, title=title, interrupted=isinstance(val, dict) and bool(val.get("interrupted")))
+        blocks.append(block)
+    return blocks
 
 
 # ------------------------------------------------------------------------ rows
@@ -338,7 +443,7 @@ def render_report(summary: dict[str, Any], verdicts: pd.DataFrame, tokens: list[
     nonfinite = sum(1 for r in rows if r.get("verdict") in COMPARED and r["gap"] is None)
     rec = summary.get("recommendation") or {}
     action = rec.get("action", "inconclusive")
-    sweeps = [(key, title, generic_table(summary[key])) for key, title in SWEEP_KEYS if summary.get(key)]
+    sweeps = sweep_blocks(summary)
     s = summary.get("settings") or {}
     settings_items, settings_unset = _labelled(s, SETTINGS_LABELS, ("beam", "penalty", "alpha"), skip_unset=True)
     return env.get_template("report.html.j2").render(
