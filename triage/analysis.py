@@ -165,6 +165,10 @@ def recommend(counts: dict[str, int], evidence: dict[str, Any] | None = None, mi
         if best:
             because += (f" and widening to {best['beam']} resolves {best['resolved_share']:.0%} of search-side rows "
                         f"({best['corpus_delta']:+.1f} {metric})")
+        elif widen and widen.get("widths"):
+            w = max(widen["widths"], key=lambda w: w["beam"])
+            because += (f"; widening to {w['beam']} has no search-side row to resolve and changes {metric} by "
+                        f"{w['corpus_delta']:+.1f} on the dev set")
         if lp_text:
             because += "; " + lp_text
         return {"action": "fix-model", "because": because}
