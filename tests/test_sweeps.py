@@ -28,12 +28,16 @@ OPTS = TriageOptions(progress=False)
 
 @pytest.fixture(scope="module")
 def tiny():
+    # one thread: tiny matrices gain nothing from more, and threads fight on the shared cores
+    threads = torch.get_num_threads()
+    torch.set_num_threads(1)
     torch.manual_seed(0)
     m, tok = make_marian(seed=0, d_model=16, num_beams=2, length_penalty=1.0, max_new_tokens=MAX_NEW,
                          eos_bias=2.0)
     tm = TransformersModel(m, tok)
     src = sentences(N, seed=1)
-    return tm, model_settings(tm), src, tm.tokenize_sources(src)
+    yield tm, model_settings(tm), src, tm.tokenize_sources(src)
+    torch.set_num_threads(threads)
 
 
 def _frame(src, refs, outs):
