@@ -44,6 +44,9 @@ def make_marian(seed: int = 0, d_model: int = 32, layers: int = 1, vocab_size: i
     model = MarianMTModel(cfg).eval()
     with torch.no_grad():
         model.final_logits_bias[0, 1] = eos_bias
+        # never generate <pad> or <unk>: their text vanishes when detokenized (real checkpoints ban pad too)
+        model.final_logits_bias[0, 0] = -1e4
+        model.final_logits_bias[0, 2] = -1e4
     model.generation_config.forced_eos_token_id = None
     model.generation_config.bad_words_ids = None
     for k, v in gen.items():

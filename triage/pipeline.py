@@ -121,7 +121,9 @@ def run_triage(
     for i in fail_idx:
         refs = model.tokenize_targets(references[i])
         out = model.tokenize_targets([outputs[i]])[0]
-        requests.append(ScoreRequest(src_ids[i], refs + [out], [False] * len(refs) + [len(out) >= limit]))
+        # a target of exactly `limit` tokens can only come out of the decoder as a hypothesis stopped at
+        # the length limit (no end token): score it that way, flagged
+        requests.append(ScoreRequest(src_ids[i], refs + [out], [len(t) >= limit for t in refs + [out]]))
     scored, cache_stats = _score_with_cache(model, settings, options, requests)
 
     # ---- verdicts, one row per input row in input order
