@@ -62,7 +62,7 @@ def test_widen_records_what_generate_returns(tiny, widen_plant):
     tm, s, src, ids = tiny
     result, sweeps, planted = widen_plant
     assert len(planted) >= 10
-    table = sweeps["tables"]["widen"]
+    table = sweeps.tables["widen"]
     assert sorted(table["row"]) == planted  # only the failed rows are re-decoded
     for rec in table.head(12).itertuples():  # a dozen rows keep the test fast
         # transformers' own beam search, one row at a time, as the source of truth
@@ -81,7 +81,7 @@ def test_widen_shares_follow_from_recorded_scores(tiny, widen_plant):
     result, sweeps, planted = widen_plant
     w = sweeps["widen"]
     entry = w["widths"][0]
-    table = sweeps["tables"]["widen"]
+    table = sweeps.tables["widen"]
     margin = result.options.margin
     assert result.summary["counts"]["search"] == len(planted)
     # reference score at width 8 recomputed from the recorded log-probs: sum / len**alpha, with len
@@ -120,7 +120,7 @@ def test_beam_width_one_is_greedy(tiny, widen_plant):
     result, sweeps, _ = widen_plant
     curve = sweeps["beam_curve"]
     assert [p["beam"] for p in curve["points"]] == [1, 2]
-    table = sweeps["tables"]["beam_curve"]
+    table = sweeps.tables["beam_curve"]
     greedy_texts = []
     with torch.no_grad():
         for row in ids[:16]:
@@ -201,10 +201,10 @@ def test_interrupt_keeps_finished_widths_and_estimate(tiny, widen_plant, monkeyp
 
     monkeypatch.setattr(sw, "decode", stop_at_six)
     out = run_sweeps(tm, result, widen=[4, 6], max_rows=5, seed=3, progress=False)
-    assert out["interrupted"] and out["widen"]["interrupted"]
+    assert out["sweeps_interrupted"] and out["widen"]["interrupted"]
     assert [w["beam"] for w in out["widen"]["widths"]] == [4]
     assert out["widen"]["rows"]["redecoded"] == 5 and out["widen"]["rows"]["sampled"]
-    assert len(out["tables"]["widen"]) == 5
+    assert len(out.tables["widen"]) == 5
 
 
 def test_parse_widths_and_alphas():

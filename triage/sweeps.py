@@ -404,6 +404,15 @@ def _redecode(model, result, alphas, section, references, devset, max_rows, seed
 
 
 # --------------------------------------------------------------------------- the whole thing
+class Sweeps(dict):
+    """The summary keys of the sweeps that ran (JSON-ready: `summary.update(sweeps)` is safe),
+    plus `.tables`: per-row DataFrames {"widen": .., "beam_curve": ..} kept out of the dict."""
+
+    def __init__(self, *args: Any, **kw: Any) -> None:
+        super().__init__(*args, **kw)
+        self.tables: dict[str, pd.DataFrame] = {}
+
+
 def run_sweeps(model, result, *, widen: Sequence[int] | None = None, beam_curve_max: int | None = None,
                alphas: Sequence[float] | None = None, redecode_alpha: Sequence[float] | None = None,
                max_rows: int | None = None, seed: int = 0, progress: bool = True, devset: Any = None,
@@ -417,13 +426,14 @@ def run_sweeps(model, result, *, widen: Sequence[int] | None = None, beam_curve_
     most this many rows per decoding sweep; devset: the dev set given to run_triage (for all
     references of multi-reference rows; without it each row keeps its best reference).
 
-    Returned: {"widen": .., "beam_curve": .., "length_penalty": .. (those run),
-    "tables": {"widen": DataFrame, "beam_curve": DataFrame}, "interrupted": bool}.
+    Returned: a Sweeps dict {"widen": .., "beam_curve": .., "length_penalty": .. (those run),
+    "sweeps_interrupted": bool}; per-row tables are in its `.tables` ({"widen": DataFrame of the
+    re-decoded rows per width, "beam_curve": DataFrame of each row's output per width}).
     """
     if max_rows is not None and max_rows < 1:
         raise OptionError(f"max rows must be at least 1, got {max_rows}")
     references, ref_kind = _references(result, devset)
-    out: dict[str, Any] = {"tables": {}, "interrupted": False}
+    out = Sweeps(sweeps_interrupted=False)
     state: dict[str, Any] = {}
     if length_penalty is None:
         length_penalty = alphas is not None or bool(redecode_alpha)
@@ -436,21 +446,21 @@ def run_sweeps(model, result, *, widen: Sequence[int] | None = None, beam_curve_
                 max_rows=max_rows, seed=seed, progress=progress, state=state)
         if widen:
             step = "widen"
-            out["widen"], out["tables"]["widen"] = sweep_widen(
+            out["widen"], out.tables["widen"] = sweep_widen(
                 model, result, sorted(set(int(w) for w in widen)), references=references, ref_kind=ref_kind,
                 max_rows=max_rows, seed=seed, progress=progress, state=state)
         if beam_curve_max:
             step = "beam_curve"
-            out["beam_curve"], out["tables"]["beam_curve"] = sweep_beam_curve(
+            out["beam_curve"], out.tables["beam_curve"] = sweep_beam_curve(
                 model, result, int(beam_curve_max), references=references, ref_kind=ref_kind,
                 max_rows=max_rows, seed=seed, progress=progress, state=state)
     except KeyboardInterrupt:
-        out["interrupted"] = True
+        out["sweeps_interrupted"] = True
         if step in state:
             state[step]["interrupted"] = True
             out[step] = state[step]
             if f"{step}_table" in state:
-                out["tables"][step] = pd.DataFrame(state[f"{step}_table"])
+                out.tables[step] = pd.DataFrame(state[f"{step}_table"])
     return out
 
 
@@ -459,11 +469,10 @@ def merge_sweeps(summary: dict[str, Any], sweeps: dict[str, Any]) -> dict[str, p
     for key in SUMMARY_KEYS:
         if key in sweeps:
             summary[key] = sweeps[key]
-    if sweeps.get("interrupted"):
-        summary["sweeps_interrupted"] = True
+    summary["sweeps_interrupted"] = bool(sweeps.get("sweeps_interrupted"))
     summary["recommendation"] = recommend(summary.get("counts", {}), {k: summary[k] for k in SUMMARY_KEYS
                                                                        if k in summary})
-    return dict(sweeps.get("tables", {}))
+    return dict(getattr(sweeps, "tables", {}))
 
 
 # --------------------------------------------------------------------------- cost estimate
