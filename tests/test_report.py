@@ -402,6 +402,19 @@ def test_histogram_bins_match_numpy():
     assert sum(b[2] for b in bins) == 300
 
 
+def test_far_out_margins_are_named_not_drawn():
+    from triage.charts import gap_histogram, split_outliers
+
+    rng = np.random.default_rng(1)
+    vals = list(rng.normal(-2.0, 0.5, 200)) + [4234.2, 190.0, -9999.0]
+    below, inside, above = split_outliers(vals)
+    q1, q3 = np.percentile(vals, [25, 75])  # numpy's default (linear) quantiles
+    assert below == [-9999.0] and above == [190.0, 4234.2]
+    assert all(q1 - 3 * (q3 - q1) <= v <= q3 + 3 * (q3 - q1) for v in inside) and len(inside) == 200
+    svg = str(gap_histogram(vals))
+    assert "1 more below -9999" in svg and "2 more above, up to 4234" in svg
+
+
 def test_length_bars_are_proportional_and_labelled():
     from triage.charts import LABELS, length_bars
 

@@ -122,9 +122,33 @@ def gap_bins(values: Sequence[float], target: int = 16) -> list[tuple[float, flo
     return [(start + k * step, start + (k + 1) * step, counts[k]) for k in range(n)]
 
 
+def split_outliers(values: Sequence[float], k: float = 3.0) -> tuple[list[float], list[float], list[float]]:
+    """(below, inside, above) Tukey's far fences, Q1 - k*IQR and Q3 + k*IQR (k = 3: "far out").
+
+    A few huge margins (a token the model all but forbids) would squeeze every other bar into one;
+    the chart draws the inside values and names the others in words.
+    """
+    vals = sorted(float(v) for v in values if v is not None and math.isfinite(float(v)))
+    if len(vals) < 8:
+        return [], vals, []
+
+    def q(p: float) -> float:  # linear interpolation between order statistics (numpy's default)
+        x = p * (len(vals) - 1)
+        i = int(math.floor(x))
+        return vals[i] + (vals[min(i + 1, len(vals) - 1)] - vals[i]) * (x - i)
+
+    q1, q3 = q(0.25), q(0.75)
+    iqr = q3 - q1
+    if iqr <= 0:
+        return [], vals, []
+    lo, hi = q1 - k * iqr, q3 + k * iqr
+    return [v for v in vals if v < lo], [v for v in vals if lo <= v <= hi], [v for v in vals if v > hi]
+
+
 def gap_histogram(values: Sequence[float]) -> Markup:
     """Histogram of score_gap = ref_score - out_score: left of 0 the model prefers its output."""
-    bins = gap_bins(values)
+    below, inside, above = split_outliers(values)
+    bins = gap_bins(inside)
     if not bins:
         return Markup("")
     left, right, plot_w, plot_h, top = 48, 16, 700, 180, 48
@@ -180,6 +204,12 @@ def gap_histogram(values: Sequence[float]) -> Markup:
                f'<line x1="{_f(zx)}" y1="{top - 4}" x2="{_f(zx)}" y2="{top + plot_h}" class="zero"/>')
     out.append(f'<text x="{left + plot_w / 2}" y="{height - 6}" class="ax" text-anchor="middle">margin = reference '
                f'score minus output score (rows per bin)</text>')
+    if below:
+        out.append(f'<text x="{left + 4}" y="{top + 12}" class="tick">◀ {len(below)} more below {min(below):.4g} '
+                   f'(not drawn)</text>')
+    if above:
+        out.append(f'<text x="{left + plot_w - 4}" y="{top + 12}" class="tick" text-anchor="end">{len(above)} more '
+                   f'above, up to {max(above):.4g} (not drawn) ▶</text>')
     out.append("</svg>")
     return Markup("".join(out))
 

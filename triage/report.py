@@ -31,8 +31,10 @@ ACTIONS = {
     "inconclusive": "No clear action yet",
 }
 ACTION_MEANING = {
-    "widen-beam": "the model already prefers the reference in most failed rows; a wider search should find it",
-    "fix-model": "the model itself scores its wrong output above the reference; a wider beam will not help",
+    "widen-beam": "in most failed rows the model scores the reference above the output the beam returned, so the "
+                  "search lost it, not the model",
+    "fix-model": "in most failed rows the model itself scores its wrong output above the reference, so a wider "
+                 "beam would recover few of them",
     "tune-length-penalty": "the failures come from the length penalty pushing outputs too short or too long",
     "inconclusive": "the evidence does not point one way",
 }
