@@ -38,6 +38,9 @@ def rule_name(processor: Any) -> str:
 
 
 def _generation_config(settings: DecoderSettings, base: Any = None) -> Any:
+    if settings.penalty == "gnmt":
+        # the rules do not depend on the length penalty, and transformers has no gnmt form
+        settings = settings.replace(penalty="none")
     gc = settings.to_generation_config(base)
     # processors see max_length = start token + allowed new tokens, as inside generate
     gc.max_length = settings.limit_new_tokens() + 1
