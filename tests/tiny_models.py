@@ -76,6 +76,7 @@ class TableModel:
     def __init__(self, seed: int = 0, scale: float = 1.5):
         self.seed = seed
         self.scale = scale
+        self._rows: dict[tuple, torch.Tensor] = {}
 
     # text <-> ids
     def tokenize_sources(self, texts: Sequence[str]) -> list[list[int]]:
@@ -103,12 +104,13 @@ class TableModel:
         return [state[int(i)] for i in index], cache
 
     def row(self, source: tuple[int, ...], prefix: tuple[int, ...]) -> torch.Tensor:
-        key = zlib.crc32(repr((self.seed, source, prefix)).encode())
-        g = torch.Generator().manual_seed(key)
-        logits = torch.randn(self.vocab_size, generator=g) * self.scale
-        logits[self.pad_id] = float("-inf")
-        logits[self.start_id] = float("-inf")
-        return torch.log_softmax(logits, dim=-1)
+        if (source, prefix) not in self._rows:
+            g = torch.Generator().manual_seed(zlib.crc32(repr((self.seed, source, prefix)).encode()))
+            logits = torch.randn(self.vocab_size, generator=g) * self.scale
+            logits[self.pad_id] = float("-inf")
+            logits[self.start_id] = float("-inf")
+            self._rows[(source, prefix)] = torch.log_softmax(logits, dim=-1)
+        return self._rows[(source, prefix)]
 
     def next_logprobs(self, state, prefixes: torch.Tensor, cache=None):
         rows = [self.row(state[i], tuple(prefixes[i].tolist())) for i in range(prefixes.shape[0])]

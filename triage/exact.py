@@ -25,10 +25,12 @@ alpha = 1 a prefix must be compared at its most flattering length. A minimum-len
 only removes outputs, so the bound stays valid. A prefix whose bound is not above the best
 score found so far is cut.
 
-Children are visited best log-prob first, so good outputs are found early. Each expanded
-node costs one model call (the whole prefix is re-read: no cache, the search jumps between
-branches). The search stops at a node budget or a time budget per source; then the result
-is "budget reached" (the best found so far, not a proof).
+Children are visited best log-prob first, so good outputs are found early. When a prefix
+is expanded, the next-token log-probs of all its children that pass the bound are computed
+in one batched model call (the whole prefix is re-read: no cache, the search jumps between
+branches); `nodes` counts the prefixes so scored. The search stops at a node budget or a
+time budget per source; then the result is "budget reached" (the best found so far, not a
+proof).
 """
 
 from __future__ import annotations
@@ -54,7 +56,7 @@ class ExactResult:
     status: str  # "proven" (no output scores higher) | "budget reached"
     best_tokens: list[int]  # without the end token
     best_score: float
-    nodes: int  # model calls (expanded prefixes)
+    nodes: int  # prefixes whose next-token log-probs were computed
     best_finished: bool = True  # False: the best output stops at the length limit
     best_logprob_sum: float = float("-inf")
     best_length: int = 0
@@ -73,7 +75,7 @@ def _bound(settings: DecoderSettings, s: float, t: int, limit: int) -> float:
 @torch.inference_mode()
 def exact_search(model: SequenceModel, settings: DecoderSettings, source: Sequence[int], *,
                  lower_bound: Hypothesis | None = None, max_nodes: int = 20000, max_seconds: float = 10.0,
-                 include_limit_hit: bool = True) -> ExactResult:
+                 include_limit_hit: bool = True, chunk: int = 64) -> ExactResult:
     """Best output of `source` under settings.objective, by bounded depth-first search.
 
     `lower_bound`: the beam's hypothesis for this source (decoded here when not given). Its
@@ -98,23 +100,27 @@ def exact_search(model: SequenceModel, settings: DecoderSettings, source: Sequen
         best_score = -math.inf
         best = ([], True, -math.inf, 0)
 
-    stack: list[tuple[tuple[int, ...], float]] = [((), 0.0)]
-    nodes = 0
-    status = PROVEN
-    while stack:
-        if nodes >= max_nodes or time.monotonic() - started > max_seconds:
-            status = BUDGET
-            break
-        prefix, s = stack.pop()
-        t = len(prefix)
-        if _bound(settings, s, t, limit) <= best_score:
-            continue
-        ids = torch.tensor([[int(model.start_id), *prefix]], dtype=torch.long)
-        lp, _ = model.next_logprobs(state, ids, None)
-        lp = apply_rules(procs, ids, lp.float())[0]
-        nodes += 1
+    def score_prefixes(prefixes: list[tuple[int, ...]]) -> list[torch.Tensor]:
+        """Rule-processed next-token log-probs after each prefix (all of one length), one model call."""
+        ids = torch.tensor([[int(model.start_id), *p] for p in prefixes], dtype=torch.long)
+        rows, _ = model.select(state, None, torch.zeros(len(prefixes), dtype=torch.long))
+        lp, _ = model.next_logprobs(rows, ids, None)
+        lp = apply_rules(procs, ids, lp.float())
         if float(lp.max()) > 1e-4:
             raise ValueError("exact search needs log-probs <= 0; the model returned a positive value")
+        return list(lp)
+
+    stack: list[tuple[tuple[int, ...], float, torch.Tensor]] = [((), 0.0, score_prefixes([()])[0])]
+    nodes = 1
+    status = PROVEN
+    while stack:
+        if time.monotonic() - started > max_seconds:
+            status = BUDGET
+            break
+        prefix, s, lp = stack.pop()
+        t = len(prefix)
+        if _bound(settings, s, t, limit) <= best_score:
+            continue  # the best score rose since this prefix was queued
         # end here
         for e in eos:
             total = s + float(lp[e])
@@ -124,7 +130,7 @@ def exact_search(model: SequenceModel, settings: DecoderSettings, source: Sequen
                 best = (list(prefix), True, total, t + 1)
         # continue: children best first; the bound falls with the sum, so stop at the first cut
         values, order = torch.sort(lp, descending=True)
-        children = []
+        children: list[tuple[tuple[int, ...], float]] = []
         for v, c in zip(values.tolist(), order.tolist(), strict=True):
             if c in eos_set:
                 continue
@@ -141,7 +147,17 @@ def exact_search(model: SequenceModel, settings: DecoderSettings, source: Sequen
             if _bound(settings, total, t + 1, limit) <= best_score:
                 break
             children.append(((*prefix, c), total))
-        stack.extend(reversed(children))
+        if not children:
+            continue
+        if nodes + len(children) > max_nodes:
+            status = BUDGET
+            break
+        # the children's own next-token log-probs, in one batched call per chunk
+        vectors: list[torch.Tensor] = []
+        for lo in range(0, len(children), chunk):
+            vectors.extend(score_prefixes([p for p, _ in children[lo: lo + chunk]]))
+        nodes += len(children)
+        stack.extend((p, tot, vec) for (p, tot), vec in zip(reversed(children), reversed(vectors), strict=True))
 
     tokens, finished, total, length = best
     return ExactResult(
