@@ -186,6 +186,8 @@ def beam_search(model: SequenceModel, settings: DecoderSettings, source_ids: Seq
     _check_sources(model, source_ids)
     if batch_size < 1:
         raise ValueError("batch_size must be at least 1")
+    if settings.limit_new_tokens() < 1:
+        raise ValueError(f"the decoder may generate {settings.limit_new_tokens()} tokens; it needs at least 1")
     out: list[Hypothesis] = []
     for lo in range(0, len(source_ids), batch_size):
         chunk = source_ids[lo: lo + batch_size]
