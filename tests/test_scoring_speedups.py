@@ -81,9 +81,9 @@ class Spy:
     def __enter__(self):
         real = self.tm.score_positions
 
-        def spy(state, rows, inputs, picks, labels):
+        def spy(state, rows, inputs, picks, labels, **kw):
             self.calls.append((inputs.shape[0], int(picks.shape[0])))
-            return real(state, rows, inputs, picks, labels)
+            return real(state, rows, inputs, picks, labels, **kw)
 
         self.tm.score_positions = spy
         return self
@@ -171,6 +171,21 @@ def test_head_fallback_uses_full_forward(tm):
     check_against_plain(other, settings, reqs, score_requests(other, settings, reqs))
 
 
+def test_length_groups_and_grouped_encoder(tm, monkeypatch):
+    from triage import hf_backend
+
+    lengths = [3, 40, 4, 41, 5, 39]
+    groups = hf_backend.length_groups(lengths, min_tokens=10)
+    assert sorted(i for g in groups for i in g) == list(range(6))
+    assert [sorted(lengths[i] for i in g) for g in groups] == [[3, 4, 5], [39, 40, 41]]
+    # grouped runs (groups of one row here) give the scores of the plain forward
+    monkeypatch.setattr(hf_backend, "length_groups",
+                        lambda lens, slack=1.1, min_tokens=512: [[i] for i in range(len(lens))])
+    reqs = mixed_requests(tm)
+    settings = fast_settings(tm)
+    check_against_plain(tm, settings, reqs, score_requests(tm, settings, reqs))
+
+
 def test_head_check_accepts_marian(tm):
     assert tm._head() is not None
 
@@ -210,6 +225,7 @@ def test_rules_path_equals_plain_forward_with_processors(tm, monkeypatch, budget
 
 def test_bench_flop_count_matches_torch_counter():
     from torch.utils.flop_counter import FlopCounterMode
+
     from triage.bench import row_flops
 
     model, tok = make_marian(seed=1, d_model=32, layers=2)

@@ -238,6 +238,43 @@ class TransformersModel:
                 self._head_parts = parts
         return self._head_parts
 
+    def _grouped_decoder_hidden(self, state: dict[str, torch.Tensor], decoder_inputs: torch.Tensor,
+                                lengths: Sequence[int] | None) -> torch.Tensor:
+        if lengths is None or len(lengths) < 2:
+            return self._decoder_hidden(state, decoder_inputs)
+        groups = length_groups(lengths)
+        if len(groups) == 1:
+            return self._decoder_hidden(state, decoder_inputs)
+        src_len = state["mask"].sum(1).tolist()
+        hidden = None
+        for idx in groups:
+            width = max(lengths[i] for i in idx)
+            swidth = max(int(src_len[i]) for i in idx)
+            index = torch.tensor(idx, dtype=torch.long, device=self.device)
+            sub = {"hidden": state["hidden"].index_select(0, index)[:, :swidth],
+                   "mask": state["mask"].index_select(0, index)[:, :swidth]}
+            h = self._decoder_hidden(sub, decoder_inputs.index_select(0, index)[:, :width])
+            if hidden is None:
+                hidden = h.new_zeros((decoder_inputs.shape[0], decoder_inputs.shape[1], h.shape[-1]))
+            hidden[index, :width] = h
+        return hidden
+
+    @torch.inference_mode()
+    def encode_grouped(self, sources: Sequence[Sequence[int]]) -> dict[str, torch.Tensor]:
+        """``encode`` in length-sorted groups (less padding); same state layout, padded to the longest."""
+        lengths = [len(x) for x in sources]
+        groups = length_groups(lengths)
+        if len(groups) == 1:
+            return self.encode(sources)
+        ids, mask = self._pad(sources)
+        hidden = None
+        for idx in groups:
+            part = self.encode([sources[i] for i in idx])["hidden"]
+            if hidden is None:
+                hidden = part.new_zeros((len(sources), ids.shape[1], part.shape[-1]))
+            hidden[torch.tensor(idx, dtype=torch.long, device=self.device), : part.shape[1]] = part
+        return {"hidden": hidden, "mask": mask, "input_ids": ids}
+
     def _decoder_hidden(self, state: dict[str, torch.Tensor], decoder_inputs: torch.Tensor) -> torch.Tensor:
         out = self.model.get_decoder()(
             input_ids=decoder_inputs.to(self.device),
@@ -256,13 +293,16 @@ class TransformersModel:
 
     @torch.inference_mode()
     def score_positions(self, state: dict[str, torch.Tensor], rows: torch.Tensor, decoder_inputs: torch.Tensor,
-                        picks: torch.Tensor, labels: torch.Tensor) -> torch.Tensor:
+                        picks: torch.Tensor, labels: torch.Tensor,
+                        lengths: Sequence[int] | None = None) -> torch.Tensor:
         """Teacher-forced log-probs at chosen positions only.
 
         decoder_inputs [R, T] are run against encoder rows `rows` [R] of `state`; `picks` [M]
         are flat positions (r * T + t) into them; `labels` [M, K] the tokens whose log-probs
         are wanted after each picked position. Returns [M, K]. The output projection and the
         softmax run only for the picked positions, in chunks of at most `logits_budget` logits.
+        With `lengths` (real tokens per run) the decoder runs in length-sorted groups cut to
+        their own width, so little work goes to padding.
         """
         rows = rows.to(self.device)
         state = {k: v.index_select(0, rows) for k, v in state.items()}
@@ -272,7 +312,7 @@ class TransformersModel:
         parts = self._head()
         out = torch.empty(labels.shape, dtype=torch.float32)
         if parts is not None:
-            hidden = self._decoder_hidden(state, decoder_inputs)
+            hidden = self._grouped_decoder_hidden(state, decoder_inputs, lengths)
             hidden = hidden.reshape(-1, hidden.shape[-1]).index_select(0, picks)
             step = max(1, self.logits_budget // self.vocab_size)
             for a in range(0, hidden.shape[0], step):
@@ -292,6 +332,25 @@ class TransformersModel:
         return out
 
 
+def length_groups(lengths: Sequence[int], slack: float = 1.1, min_tokens: int = 512) -> list[list[int]]:
+    """Indices cut into length-sorted groups: padded tokens stay within `slack` of the real ones,
+    and a group holds at least `min_tokens` real tokens (large matmuls) before it may end."""
+    order = sorted(range(len(lengths)), key=lambda i: lengths[i])
+    groups: list[list[int]] = []
+    cur: list[int] = []
+    real = 0
+    for i in order:
+        n = lengths[i]
+        if cur and real >= min_tokens and n * (len(cur) + 1) > slack * (real + n):
+            groups.append(cur)
+            cur, real = [], 0
+        cur.append(i)
+        real += n
+    if cur:
+        groups.append(cur)
+    return groups
+
+
 def load_transformers_model(name_or_path: str, *, device: str = "cpu", allow_pickle: bool = False,
                             trust_remote_code: bool = False) -> TransformersModel:
     """Load a local encoder-decoder checkpoint with transformers' Auto classes (never downloads)."""
@@ -301,6 +360,10 @@ def load_transformers_model(name_or_path: str, *, device: str = "cpu", allow_pic
     if not (model_dir / "config.json").is_file():
         raise ModelError("no config.json in the model directory", path=str(model_dir))
     from transformers import AutoConfig, AutoModelForSeq2SeqLM, AutoTokenizer
+    from transformers.utils import logging as hf_logging
+
+    hf_logging.disable_progress_bar()
+    hf_logging.set_verbosity_error()
 
     try:
         config = AutoConfig.from_pretrained(model_dir, local_files_only=True, trust_remote_code=trust_remote_code)

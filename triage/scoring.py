@@ -195,7 +195,8 @@ def _score_batch_tree(model, settings, requests, batch, by_row, results) -> None
     position after the start token. Every node is run through the decoder by one target and
     projected once; each target reads its token's log-prob at each of its nodes.
     """
-    state = model.encode([requests[i].source_ids for i in batch])
+    encode = getattr(model, "encode_grouped", model.encode)
+    state = encode([requests[i].source_ids for i in batch])
     run_rows: list[int] = []          # encoder row of each decoder run
     run_labels: list[list[int]] = []  # labels of each decoder run
     node_at: list[tuple[int, int]] = []  # node -> (decoder run, position)
@@ -247,7 +248,8 @@ def _score_batch_tree(model, settings, requests, batch, by_row, results) -> None
         cols = max(len(x) for x in node_tokens)
         picks = torch.tensor([r * width + t for r, t in node_at], dtype=torch.long)
         wanted = torch.tensor([x + [x[0]] * (cols - len(x)) for x in node_tokens], dtype=torch.long)
-        lp = model.score_positions(state, torch.tensor(run_rows, dtype=torch.long), inputs, picks, wanted)
+        lp = model.score_positions(state, torch.tensor(run_rows, dtype=torch.long), inputs, picks, wanted,
+                                   lengths=[len(x) for x in run_labels])
         flat = lp.reshape(-1)
         index = torch.tensor([n * cols + c for rd in reads for n, c in rd], dtype=torch.long)
         values = flat.index_select(0, index).tolist() if len(index) else []
