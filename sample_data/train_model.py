@@ -35,7 +35,7 @@ EOS_ID, UNK_ID, PAD_ID = 0, 1, 2
 
 # production decoding settings shipped in generation_config.json
 NUM_BEAMS = 2
-LENGTH_PENALTY = 1.0
+LENGTH_PENALTY = 0.5
 
 
 def read_tsv(path):
@@ -99,12 +99,13 @@ def main():
     ap = argparse.ArgumentParser()
     ap.add_argument("--data", default=str(HERE / "build"))
     ap.add_argument("--out", default=str(HERE / "model"))
-    ap.add_argument("--steps", type=int, default=3000)
+    ap.add_argument("--steps", type=int, default=2400)
     ap.add_argument("--warmup", type=int, default=300)
     ap.add_argument("--lr", type=float, default=1e-3)
     ap.add_argument("--max-tokens", type=int, default=6000)
     ap.add_argument("--threads", type=int, default=2)
     ap.add_argument("--log-every", type=int, default=50)
+    ap.add_argument("--save-every", type=int, default=0)
     args = ap.parse_args()
 
     torch.set_num_threads(args.threads)
@@ -149,6 +150,18 @@ def main():
         return max(0.05, 1.0 - (step - args.warmup) / max(1, args.steps - args.warmup))
 
     sched = torch.optim.lr_scheduler.LambdaLR(opt, lr_at)
+    gen = GenerationConfig(
+        num_beams=NUM_BEAMS, length_penalty=LENGTH_PENALTY, do_sample=False,
+        early_stopping=False, max_new_tokens=dev_ref_len + 40,
+        decoder_start_token_id=PAD_ID, eos_token_id=EOS_ID, pad_token_id=PAD_ID,
+        bos_token_id=None, forced_eos_token_id=None, bad_words_ids=None,
+    )
+    model.generation_config = gen
+
+    def save(path):
+        model.save_pretrained(path)
+        tok.save_pretrained(path)
+
     model.train()
     step, t0, epoch = 0, time.time(), 0
     run_loss, run_tok = 0.0, 0
@@ -179,18 +192,12 @@ def main():
                       f"lr {sched.get_last_lr()[0]:.2e} {el / step:.2f}s/step {el / 60:.1f}min",
                       flush=True)
                 run_loss, run_tok = 0.0, 0
+            if args.save_every and step % args.save_every == 0 and step < args.steps:
+                save(Path(args.data) / f"ckpt-{step}")  # intermediate, not shipped
     train_s = time.time() - t0
 
     model.eval()
-    gen = GenerationConfig(
-        num_beams=NUM_BEAMS, length_penalty=LENGTH_PENALTY, do_sample=False,
-        early_stopping=False, max_new_tokens=dev_ref_len + 40,
-        decoder_start_token_id=PAD_ID, eos_token_id=EOS_ID, pad_token_id=PAD_ID,
-        bos_token_id=None, forced_eos_token_id=None, bad_words_ids=None,
-    )
-    model.generation_config = gen
-    model.save_pretrained(out)
-    tok.save_pretrained(out)
+    save(out)
     info = {"steps": args.steps, "train_seconds": round(train_s, 1), "final_loss": log[-1]["loss"],
             "parameters": n_params, "threads": args.threads, "max_tokens": args.max_tokens,
             "lr": args.lr, "warmup": args.warmup, "train_rows": len(train), "log": log}
