@@ -60,7 +60,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     g = r.add_argument_group("dev set")
     g.add_argument("--data", metavar="FILE", help="dev set as .tsv (with header), .csv or .jsonl")
-    g.add_argument("--format", choices=("tsv", "csv", "jsonl"), help="format of --data (default: by extension)")
+    g.add_argument("--format", choices=("tsv", "tsv-raw", "tsv-quoted", "csv", "jsonl"),
+                   help="format of --data (default: by extension; tsv detects whether cells are quoted)")
     g.add_argument("--column", action="append", default=[], metavar="OURS=THEIRS",
                    help="map a column: source=, reference=, output= or id= (repeatable), e.g. source=src")
     g.add_argument("--source", metavar="FILE", help="plain-text sources, one segment per line")
@@ -121,15 +122,6 @@ def build_parser() -> argparse.ArgumentParser:
     b = sub.add_parser("bench", help="benchmark scoring against a naive baseline and generate", add_help=False)
     b.add_argument("bench_args", nargs=argparse.REMAINDER)
     return p
-
-
-def _float_list(text: str | None, name: str) -> list[float] | None:
-    if text is None:
-        return None
-    try:
-        return [float(x) for x in text.split(",") if x.strip()]
-    except ValueError:
-        raise OptionError(f"{name} must be numbers separated by commas, got {text!r}") from None
 
 
 def _columns(pairs: list[str]) -> dict[str, str]:
@@ -196,24 +188,23 @@ def cmd_run(a: argparse.Namespace) -> int:
     info = model_info(model, a.model)
     result = run_triage(model, dev, settings, options, model_info=info)
 
-    import importlib.util
+    from .sweeps import estimate_seconds, parse_alphas, parse_widths, run_sweeps
 
-    if importlib.util.find_spec("triage.sweeps") is not None:
-        from .sweeps import parse_widths, run_sweeps
-
-        try:
-            widths = parse_widths(a.widen, settings.beam) if a.widen else None
-        except ValueError as exc:
-            raise OptionError(f"--widen: {exc}") from None
-        extra = run_sweeps(model, result, widen=widths, beam_curve_max=a.beam_curve,
-                           alphas=_float_list(a.alpha_grid, "--alpha-grid"),
-                           redecode_alpha=_float_list(a.redecode_alpha, "--redecode-alpha"),
-                           max_rows=a.max_rows, seed=a.seed, progress=not a.quiet)
-        result.summary.update(extra)
+    widths = parse_widths(a.widen, settings.beam) if a.widen else None
+    alphas = parse_alphas(a.alpha_grid) if a.alpha_grid else None
+    redecode = parse_alphas(a.redecode_alpha) if a.redecode_alpha else None
+    plan = dict(widen=widths, beam_curve_max=a.beam_curve, alphas=alphas, redecode_alpha=redecode,
+                max_rows=a.max_rows, seed=a.seed)
+    if widths or a.beam_curve or redecode:
+        est = estimate_seconds(model, result, **plan)
+        print(f"triage: sweeps estimated at {est['seconds']:.0f} s (measured on {est['sample_rows']} rows)",
+              file=sys.stderr)
+    extra = run_sweeps(model, result, **plan, progress=not a.quiet, devset=dev, length_penalty=True)
+    result.summary.update(extra)
     if a.where_lost or a.exact:
         from .search_checks import run_search_checks
 
-        run_search_checks(model, result, where_lost=a.where_lost, exact=a.exact, progress=not a.quiet)
+        run_search_checks(model, result, where_lost_rows=a.where_lost, exact=a.exact, progress=not a.quiet)
     from .analysis import recommend
 
     result.summary["recommendation"] = recommend(result.summary["counts"], result.summary)
