@@ -2,8 +2,12 @@ import sys
 from pathlib import Path
 
 import pytest
+import torch
 
 sys.path.insert(0, str(Path(__file__).parent))
+
+# tiny models run far faster on one thread, and the suite shares 2 cores with whatever else runs
+torch.set_num_threads(1)
 
 
 @pytest.fixture(scope="session")
