@@ -176,6 +176,12 @@ def cmd_run(a: argparse.Namespace) -> int:
                                   source_prefix=a.prefix)
     except ValueError as exc:
         raise OptionError(str(exc)) from None
+    from .sweeps import estimate_seconds, parse_alphas, parse_widths, run_sweeps
+
+    # sweep options are checked before anything is scored, so a typo costs no scoring time
+    widths = parse_widths(a.widen, settings.beam) if a.widen else None
+    alphas = parse_alphas(a.alpha_grid) if a.alpha_grid else None
+    redecode = parse_alphas(a.redecode_alpha) if a.redecode_alpha else None
     options = TriageOptions(metric=a.metric, below=a.below,
                             margin=DEFAULT_MARGIN if a.margin is None else a.margin,
                             bucket_by=a.bucket_by, token_budget=a.token_budget, progress=not a.quiet)
@@ -188,11 +194,6 @@ def cmd_run(a: argparse.Namespace) -> int:
     info = model_info(model, a.model)
     result = run_triage(model, dev, settings, options, model_info=info)
 
-    from .sweeps import estimate_seconds, parse_alphas, parse_widths, run_sweeps
-
-    widths = parse_widths(a.widen, settings.beam) if a.widen else None
-    alphas = parse_alphas(a.alpha_grid) if a.alpha_grid else None
-    redecode = parse_alphas(a.redecode_alpha) if a.redecode_alpha else None
     plan = dict(widen=widths, beam_curve_max=a.beam_curve, alphas=alphas, redecode_alpha=redecode,
                 max_rows=a.max_rows, seed=a.seed)
     if widths or a.beam_curve or redecode:

@@ -1,0 +1,250 @@
+"""What a user meets at the command line when the dev set, the model or the options are wrong:
+exit code 2 and one line on stderr naming the file and the problem, never a traceback.
+
+The dev-set cases come from tests/bad_inputs/EXPECTED.tsv (file, expected substring, line);
+the model cases are built here in temporary folders.
+"""
+
+from __future__ import annotations
+
+import csv
+import json
+import os
+import shutil
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+import torch
+
+from triage.cli import main
+
+HERE = Path(__file__).parent / "bad_inputs"
+ROOT = Path(__file__).resolve().parent.parent
+
+
+def _cases() -> list[dict[str, str]]:
+    with open(HERE / "EXPECTED.tsv", encoding="utf-8", newline="") as f:
+        return [r for r in csv.DictReader(f, delimiter="\t", quoting=csv.QUOTE_NONE)
+                if r["file"] not in ("EXPECTED.tsv", ".gitattributes")]
+
+
+CASES = _cases()
+GOOD_TSV = "id\tsource\treference\toutput\n1\tthe train\tthe bus\tthe train\n2\tone two\tone two\tone\n"
+
+
+def _run(capsys, *args: str) -> tuple[int, str, str]:
+    capsys.readouterr()  # drop what building the test's model printed
+    rc = main(["run", *args, "--quiet"])
+    cap = capsys.readouterr()
+    return rc, cap.out, cap.err
+
+
+def _one_error_line(err: str) -> str:
+    assert "Traceback" not in err
+    lines = err.splitlines()
+    assert len(lines) == 1, err
+    assert lines[0].startswith("triage: error: ")
+    return lines[0]
+
+
+@pytest.fixture
+def good_tsv(tmp_path) -> Path:
+    p = tmp_path / "dev.tsv"
+    p.write_text(GOOD_TSV, encoding="utf-8")
+    return p
+
+
+# ----------------------------------------------------------------------------- dev sets
+def test_every_bad_file_is_listed():
+    on_disk = sorted(p.name for p in HERE.iterdir() if p.name not in ("EXPECTED.tsv", ".gitattributes"))
+    assert sorted(c["file"] for c in CASES) == on_disk
+
+
+@pytest.mark.parametrize("case", CASES, ids=[c["file"] for c in CASES])
+def test_bad_dev_set_exit_2_one_line(case, capsys, tmp_path, tiny_model_dir):
+    path = HERE / case["file"]
+    out = tmp_path / "out"
+    rc, stdout, err = _run(capsys, "--model", str(tiny_model_dir), "--data", str(path), "--out", str(out))
+    assert rc == 2
+    line = _one_error_line(err)
+    assert case["expect"] in line
+    assert str(path) in line  # names the file
+    if case["line"]:
+        assert f"{path}:{case['line']}:" in line
+    assert stdout == ""
+    assert not out.exists()  # nothing written for a refused dev set
+
+
+def test_exit_code_2_from_the_shell(tmp_path, tiny_model_dir):
+    path = HERE / "ragged_row.tsv"
+    env = dict(os.environ, PYTHONPATH=str(ROOT))
+    proc = subprocess.run([sys.executable, "-m", "triage", "run", "--model", str(tiny_model_dir), "--data",
+                           str(path), "--out", str(tmp_path / "out"), "--quiet"],
+                          capture_output=True, text=True, cwd=tmp_path, env=env, timeout=120)
+    assert proc.returncode == 2
+    assert "Traceback" not in proc.stderr
+    lines = proc.stderr.splitlines()
+    assert len(lines) == 1 and str(path) in lines[0] and "row has 3 cells but the header has 4" in lines[0]
+
+
+# ----------------------------------------------------------------------------- models
+def _copy_model(src: Path, dst: Path) -> Path:
+    shutil.copytree(src, dst)
+    return dst
+
+
+def test_model_directory_missing(capsys, tmp_path, good_tsv):
+    missing = tmp_path / "no-such-model"
+    rc, _, err = _run(capsys, "--model", str(missing), "--data", str(good_tsv), "--out", str(tmp_path / "o"))
+    assert rc == 2
+    line = _one_error_line(err)
+    assert str(missing) in line and "not found" in line
+
+
+def test_decoder_only_model_refused(capsys, tmp_path, good_tsv):
+    from transformers import GPT2Config, GPT2LMHeadModel
+
+    torch.manual_seed(0)
+    d = tmp_path / "gpt2"
+    GPT2LMHeadModel(GPT2Config(n_embd=16, n_layer=1, n_head=2, vocab_size=40, n_positions=32,
+                                bos_token_id=1, eos_token_id=1)).save_pretrained(d)
+    rc, _, err = _run(capsys, "--model", str(d), "--data", str(good_tsv), "--out", str(tmp_path / "o"))
+    assert rc == 2
+    line = _one_error_line(err)
+    assert "not an encoder-decoder model" in line and "gpt2" in line and str(d) in line
+
+
+def test_tokenizer_files_missing(capsys, tmp_path, good_tsv, tiny_model_dir):
+    d = _copy_model(tiny_model_dir, tmp_path / "m")
+    for f in d.iterdir():
+        if f.name.startswith(("tokenizer", "special_tokens")):
+            f.unlink()
+    rc, _, err = _run(capsys, "--model", str(d), "--data", str(good_tsv), "--out", str(tmp_path / "o"))
+    assert rc == 2
+    line = _one_error_line(err)
+    assert "tokenizer" in line and str(d) in line
+
+
+def test_vocabulary_mismatch(capsys, tmp_path, good_tsv):
+    from tinymodels import make_tokenizer, save_marian
+
+    d = save_marian(tmp_path / "small-vocab", seed=0, vocab_size=20)
+    n_tok = len(make_tokenizer())
+    assert n_tok > 20
+    rc, _, err = _run(capsys, "--model", str(d), "--data", str(good_tsv), "--out", str(tmp_path / "o"))
+    assert rc == 2
+    line = _one_error_line(err)
+    assert "vocabulary mismatch" in line and f"{n_tok} tokens" in line and "20" in line
+
+
+@pytest.fixture
+def pickle_model(tmp_path, tiny_model_dir) -> Path:
+    """The tiny model with its weights as a torch pickle (pytorch_model.bin) instead of safetensors."""
+    from safetensors.torch import load_file
+
+    d = _copy_model(tiny_model_dir, tmp_path / "pickled")
+    state = load_file(d / "model.safetensors")
+    (d / "model.safetensors").unlink()
+    torch.save(state, d / "pytorch_model.bin")
+    return d
+
+
+def test_pickle_weights_refused_by_default(capsys, tmp_path, good_tsv, pickle_model):
+    rc, _, err = _run(capsys, "--model", str(pickle_model), "--data", str(good_tsv), "--out", str(tmp_path / "o"))
+    assert rc == 2
+    line = _one_error_line(err)
+    assert "pickle" in line and "pytorch_model.bin" in line and "--allow-pickle" in line
+    assert not (tmp_path / "o").exists()
+
+
+def test_pickle_weights_load_with_allow_pickle(capsys, tmp_path, good_tsv, pickle_model, tiny_model_dir):
+    rc, _, _ = _run(capsys, "--model", str(pickle_model), "--data", str(good_tsv), "--out", str(tmp_path / "p"),
+                    "--allow-pickle", "--no-cache")
+    assert rc == 0
+    rc, _, _ = _run(capsys, "--model", str(tiny_model_dir), "--data", str(good_tsv), "--out", str(tmp_path / "s"),
+                    "--no-cache")
+    assert rc == 0
+    # the same weights give the same verdicts and scores whichever file format holds them
+    assert (tmp_path / "p" / "verdicts.csv").read_bytes() == (tmp_path / "s" / "verdicts.csv").read_bytes()
+
+
+def _remote_code_model(tmp_path: Path, tiny_model_dir: Path) -> tuple[Path, Path]:
+    """A checkpoint whose config asks for its own Python code; importing that code leaves a marker file."""
+    d = _copy_model(tiny_model_dir, tmp_path / "remote")
+    marker = tmp_path / "remote-code-ran"
+    (d / "custom_code.py").write_text(
+        "from pathlib import Path\n"
+        f"Path({str(marker)!r}).write_text('ran')\n"
+        "from transformers import MarianConfig\n"
+        "class CustomConfig(MarianConfig):\n"
+        "    model_type = 'custom-marian'\n", encoding="utf-8")
+    cfg = json.loads((d / "config.json").read_text())
+    cfg["auto_map"] = {"AutoConfig": "custom_code.CustomConfig"}
+    cfg["model_type"] = "custom-marian"
+    (d / "config.json").write_text(json.dumps(cfg), encoding="utf-8")
+    return d, marker
+
+
+def test_checkpoint_code_not_run_by_default(capsys, tmp_path, good_tsv, tiny_model_dir):
+    d, marker = _remote_code_model(tmp_path, tiny_model_dir)
+    rc, _, err = _run(capsys, "--model", str(d), "--data", str(good_tsv), "--out", str(tmp_path / "o"))
+    assert rc == 2
+    line = _one_error_line(err)
+    assert str(d) in line
+    assert not marker.exists()  # the checkpoint's own code never ran
+
+
+def test_trust_remote_code_passed_only_with_the_flag(monkeypatch, tiny_model_dir):
+    import transformers
+
+    from triage.hf_backend import load_transformers_model
+
+    seen = []
+    real = transformers.AutoConfig.from_pretrained.__func__
+
+    def spy(cls, *args, **kw):
+        seen.append(kw.get("trust_remote_code"))
+        return real(cls, *args, **kw)
+
+    monkeypatch.setattr(transformers.AutoConfig, "from_pretrained", classmethod(spy))
+    load_transformers_model(str(tiny_model_dir))
+    default = list(seen)
+    seen.clear()
+    load_transformers_model(str(tiny_model_dir), trust_remote_code=True)
+    assert default and not any(default)  # every config read asked for no remote code
+    assert seen[0] is True
+
+
+# ----------------------------------------------------------------------------- options
+@pytest.mark.parametrize("args, expect", [
+    (["--beam", "0"], "--beam must be at least 1"),
+    (["--buckets", "1,x,5"], "bucket edges must be integers"),
+    (["--buckets", "10,5"], "bucket edges must be increasing"),
+    (["--beam", "4", "--widen", "2,8"], "not wider than the current width 4"),
+    (["--widen", "x1"], "not wider than the current width"),
+    (["--column", "nonsense"], "--column expects OURS=THEIRS"),
+])
+def test_bad_options_exit_2(args, expect, capsys, tmp_path, good_tsv, tiny_model_dir):
+    out = tmp_path / "o"
+    rc, stdout, err = _run(capsys, "--model", str(tiny_model_dir), "--data", str(good_tsv), "--out", str(out), *args)
+    assert rc == 2
+    line = _one_error_line(err)
+    assert expect in line
+    assert not out.exists()  # refused before anything was scored or written
+
+
+def test_plain_text_files_of_different_lengths(capsys, tmp_path, tiny_model_dir):
+    src = tmp_path / "src.txt"
+    ref = tmp_path / "ref.txt"
+    hyp = tmp_path / "hyp.txt"
+    src.write_text("the train\none two\nthree four\n", encoding="utf-8")
+    ref.write_text("the bus\none two\nthree four\n", encoding="utf-8")
+    hyp.write_text("the train\none\n", encoding="utf-8")
+    rc, _, err = _run(capsys, "--model", str(tiny_model_dir), "--source", str(src), "--reference", str(ref),
+                      "--output", str(hyp), "--out", str(tmp_path / "o"))
+    assert rc == 2
+    line = _one_error_line(err)
+    assert str(hyp) in line
+    assert "2" in line and "3" in line  # says how many lines each has
