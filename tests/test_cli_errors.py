@@ -248,3 +248,53 @@ def test_plain_text_files_of_different_lengths(capsys, tmp_path, tiny_model_dir)
     line = _one_error_line(err)
     assert str(hyp) in line
     assert "2" in line and "3" in line  # says how many lines each has
+
+
+# ----------------------------------------------------------------------------- rows that cannot be scored
+@pytest.fixture(scope="module")
+def short_model_dir(tmp_path_factory):
+    """The tiny model with room for 16 positions only."""
+    from tinymodels import save_marian
+
+    return save_marian(tmp_path_factory.mktemp("short") / "model", seed=0, num_beams=2, max_new_tokens=40,
+                       max_positions=16)
+
+
+LONG = " ".join(["one two three four"] * 5)  # 20 words + end token = 21 tokens > 16 positions
+SKIP_ROWS = [
+    # id, source, reference, output, expected reason (substring)
+    ("long-ref", "the train", LONG, "the bus", "reference: target has 21 tokens, the model takes at most 16"),
+    ("long-src", LONG, "the bus", "the train", "source: 21 tokens, the model takes at most 16"),
+    ("unk-ref", "the train", "the zebra", "the bus", "reference: unknown to the tokenizer: 'zebra'"),
+    ("unk-out", "the train", "the bus", "the qüx train", "output: unknown to the tokenizer: 'qüx'"),
+    ("special-src", "</s>", "the bus", "the train", "source: no tokens after tokenization apart from special"),
+    ("special-ref", "the train", "</s>", "the bus", "reference: no tokens after tokenization apart from special"),
+    ("eos-inside", "the train", "the </s> bus", "the train", "reference: holds special tokens"),
+]
+
+
+def test_unscorable_rows_are_skipped_with_their_reason(capsys, tmp_path, short_model_dir):
+    import pandas as pd
+
+    dev = tmp_path / "dev.tsv"
+    rows = SKIP_ROWS + [("fine", "the train", "the bus", "the train", None), ("empty-out", "one", "two", "", None)]
+    dev.write_text("id\tsource\treference\toutput\n" + "".join("\t".join(r[:4]) + "\n" for r in rows),
+                   encoding="utf-8")
+    out = tmp_path / "o"
+    rc, stdout, _ = _run(capsys, "--model", str(short_model_dir), "--data", str(dev), "--out", str(out), "--no-cache")
+    assert rc == 0
+    v = pd.read_csv(out / "verdicts.csv", keep_default_na=False)
+    assert v["id"].tolist() == [r[0] for r in rows]  # every row kept, in order
+    for (rid, *_, expect), (_, got) in zip(rows, v.iterrows(), strict=True):
+        if expect is None:
+            assert got["verdict"] in ("search", "model", "tie"), rid
+        else:
+            assert got["verdict"] == "skipped", rid
+            assert expect in got["reason"], (rid, got["reason"])
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["counts"]["skipped"] == len(SKIP_ROWS)
+    assert sum(summary["skipped_reasons"].values()) == len(SKIP_ROWS)
+    assert set(summary["skipped_reasons"]) == set(v.loc[v["verdict"] == "skipped", "reason"])
+    # an empty output is what a decoder that ends at once writes: scored as the end token alone
+    empty = v[v["id"] == "empty-out"].iloc[0]
+    assert int(empty["out_len"]) == 1

@@ -118,13 +118,20 @@ def run_triage(
     fail_idx = [i for i in range(n) if failed[i]]
     requests = []
     limit = settings.limit_new_tokens()
+    unscorable: dict[int, tuple[str | None, list[str | None]]] = {}  # row -> (source problem, target problems)
     for i in fail_idx:
         refs = model.tokenize_targets(references[i])
         out = model.tokenize_targets([outputs[i]])[0]
+        targets = refs + [out]
         # a target of exactly `limit` tokens can only come out of the decoder as a hypothesis stopped at
         # the length limit (no end token): score it that way, flagged
-        requests.append(ScoreRequest(src_ids[i], refs + [out], [len(t) >= limit for t in refs + [out]]))
-    scored, cache_stats = _score_with_cache(model, settings, options, requests)
+        requests.append(ScoreRequest(src_ids[i], targets, [len(t) >= limit for t in targets]))
+        src_problem = _source_problem(model, src_ids[i])
+        problems = [src_problem or _target_problem(model, text, ids)
+                    for text, ids in zip(references[i] + [outputs[i]], targets, strict=True)]
+        if any(problems):
+            unscorable[i] = (src_problem, problems)
+    scored, cache_stats = _score_rows(model, settings, options, requests, [unscorable.get(i) for i in fail_idx])
 
     # ---- verdicts, one row per input row in input order
     rows: list[dict[str, Any]] = []
@@ -144,6 +151,8 @@ def run_triage(
             targets = by_row[i]
             ref_s, out_s = targets[:-1], targets[-1]
             v = decide(ref_s, out_s, options.margin)
+            if v.verdict == "skipped" and i in unscorable and unscorable[i][0]:
+                v.reason = f"source: {unscorable[i][0]}"
             row.update(verdict=v.verdict, reason=v.reason)
             best = v.best_ref if v.best_ref is not None else 0
             kept[i] = (ref_s, out_s)
@@ -184,6 +193,88 @@ def run_triage(
     result = TriageResult(verdicts, buckets, summary, tokens, settings, options, kept)
     result.cache = cache_stats
     return result
+
+
+def _special_ids(model) -> set[int]:
+    return {x for x in (model.start_id, model.end_id, model.pad_id) if x is not None}
+
+
+def _source_problem(model, ids: list[int]) -> str | None:
+    """Why a source cannot be scored though scoring would run: it holds no token but special ones."""
+    if ids and not set(ids) - _special_ids(model):
+        return "no tokens after tokenization apart from special ones " + _pieces(model, ids)
+    most = getattr(model, "max_source_tokens", None)
+    if most is not None and len(ids) > most:
+        return f"{len(ids)} tokens, the model takes at most {most} (nothing is cut off)"
+    return None
+
+
+def _target_problem(model, text: str, ids: list[int]) -> str | None:
+    """Why a reference or output cannot be scored fairly: the tokenizer lost part of its text.
+
+    An unknown token stands for text the model cannot write, so its score says nothing about
+    the text; a special token inside (an end token written as text) ends or breaks the
+    sequence the decoder would emit. Either way the target is skipped, never scored as is.
+    An empty output (the decoder ended at once) stays scorable: its score is the end token's.
+    """
+    unk = getattr(model, "unk_id", None)
+    if unk is not None and unk in ids:
+        return "unknown to the tokenizer: " + _unknown_parts(model, text, unk)
+    special = [t for t in ids if t in _special_ids(model)]
+    if special and len(special) == len(ids):
+        return "no tokens after tokenization apart from special ones " + _pieces(model, special)
+    if special:
+        return "holds special tokens the decoder never writes inside a sequence " + _pieces(model, special)
+    return None
+
+
+def _pieces(model, ids: list[int]) -> str:
+    return "(" + ", ".join(repr(p) for p in dict.fromkeys(model.token_strings(ids))) + ")"
+
+
+def _unknown_parts(model, text: str, unk: int, most: int = 5) -> str:
+    """The words of `text` the tokenizer maps to the unknown token; inside a word, the characters
+    that are unknown on their own when only some are."""
+    words = list(dict.fromkeys(text.split()))
+    found: list[str] = []
+    for word, ids in zip(words, model.tokenize_targets(words), strict=True):
+        if unk not in ids:
+            continue
+        bad: list[str] = []
+        if len(ids) > 1:  # the word splits into pieces: name the characters that have none
+            chars = list(dict.fromkeys(word))
+            bad = [c for c, c_ids in zip(chars, model.tokenize_targets(chars), strict=True) if unk in c_ids]
+        found.extend(bad if bad and len(bad) < len(word) else [word])
+    found = list(dict.fromkeys(found))
+    if not found:
+        return "unknown tokens (no single word shows them)"
+    more = f" and {len(found) - most} more" if len(found) > most else ""
+    return ", ".join(repr(w) for w in found[:most]) + more
+
+
+def _score_rows(model, settings, options, requests, problems):
+    """Score the requests, leaving out targets with a known problem: they come back skipped."""
+    kept_req = []
+    for req, prob in zip(requests, problems, strict=True):
+        if prob is None:
+            kept_req.append(req)
+            continue
+        keep = [j for j, p in enumerate(prob[1]) if p is None]
+        if keep:
+            kept_req.append(ScoreRequest(req.source_ids, [req.targets[j] for j in keep],
+                                         [req.allow_no_end[j] for j in keep]))
+    scored, stats = _score_with_cache(model, settings, options, kept_req)
+    it = iter(scored)
+    results = []
+    for req, prob in zip(requests, problems, strict=True):
+        if prob is None:
+            results.append(next(it))
+            continue
+        part = iter(next(it)) if any(p is None for p in prob[1]) else iter(())
+        results.append([next(part) if p is None else
+                        TargetScore(list(t), [], math.nan, len(t) + 1, math.nan, skipped=p)
+                        for t, p in zip(req.targets, prob[1], strict=True)])
+    return results, stats
 
 
 class ScoringInterrupted(KeyboardInterrupt):
