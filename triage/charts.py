@@ -193,12 +193,13 @@ def gap_histogram(values: Sequence[float]) -> Markup:
             out.append(f'<text x="{_f(x + w / 2)}" y="{_f(sy(c) - 3)}" class="tick" text-anchor="middle">{c}</text>')
     # x axis: a few round ticks, 0 always drawn and marked
     step = nice_step(span, 6)
-    t = math.ceil(lo / step) * step
-    while t <= hi + step * 1e-9:
+    k = math.ceil(lo / step)
+    while k * step <= hi + step * 1e-9:
+        t = round(k * step, 12) + 0.0  # integer multiples: no drift, no "-5.55e-17" label
         tx = sx(t)
         out.append(f'<line x1="{_f(tx)}" y1="{top + plot_h}" x2="{_f(tx)}" y2="{top + plot_h + 4}" class="axl"/>'
                    f'<text x="{_f(tx)}" y="{top + plot_h + 16}" class="tick" text-anchor="middle">{t:.3g}</text>')
-        t += step
+        k += 1
     zx = sx(0.0)
     out.append(f'<line x1="{left}" y1="{top + plot_h}" x2="{left + plot_w}" y2="{top + plot_h}" class="axl"/>'
                f'<line x1="{_f(zx)}" y1="{top - 4}" x2="{_f(zx)}" y2="{top + plot_h}" class="zero"/>')
@@ -251,4 +252,43 @@ def curve(points: Sequence[tuple[Any, Any]], y_label: str, mark: Any = None) -> 
                    f'{x:g}{" (current)" if cur else ""}</text>')
     out.append(f'<text x="{left + plot_w / 2}" y="{height - 4}" class="ax" text-anchor="middle">beam width; '
                f'line: {escape(y_label)}</text></svg>')
+    return Markup("".join(out))
+
+
+def loss_steps(by_bucket: Sequence[dict[str, Any]]) -> Markup:
+    """Strip plot: one row per length bucket, one mark per search-side row at the decoding step
+    where its reference left the beam (count labels where several rows share a step)."""
+    rows = [b for b in by_bucket if b.get("steps")]
+    if not rows:
+        return Markup("")
+    top_step = max(max(b["steps"]) for b in rows)
+    left, right, plot_w, row_h, top = 64, 24, 600, 28, 28
+    width, height = left + plot_w + right, top + row_h * len(rows) + 34
+    def sx(step: float) -> float:
+        return left + plot_w * (step - 1) / max(top_step - 1, 1)
+    out = [f'<svg class="chart" viewBox="0 0 {width} {height}" width="{width}" height="{height}" role="img" '
+           f'aria-labelledby="lost-title"><title id="lost-title">Decoding step where the reference left the beam, '
+           f'by length bucket (search-side rows)</title>',
+           f'<text x="{left}" y="16" font-size="12">each mark: one search-side row ({LABELS["search"]}); '
+           f'number: rows at that step</text>']
+    for k, b in enumerate(rows):
+        y = top + row_h * k + row_h / 2
+        out.append(f'<text x="{left - 8}" y="{_f(y + 4)}" font-size="12" text-anchor="end">{escape(b["range"])}</text>')
+        out.append(f'<line x1="{left}" x2="{left + plot_w}" y1="{_f(y)}" y2="{_f(y)}" stroke="#ddd"/>')
+        counts: dict[int, int] = {}
+        for s in b["steps"]:
+            counts[int(s)] = counts.get(int(s), 0) + 1
+        for s, n in sorted(counts.items()):
+            out.append(f'<circle cx="{_f(sx(s))}" cy="{_f(y)}" r="{_f(4 + min(n, 6))}" fill="{COLOURS["search"]}" '
+                       f'fill-opacity="0.8"><title>step {s}: {n} row(s)</title></circle>')
+            if n > 1:
+                out.append(f'<text x="{_f(sx(s))}" y="{_f(y - 10 - min(n, 6))}" font-size="10" '
+                           f'text-anchor="middle">{n}</text>')
+    axis_y = top + row_h * len(rows) + 4
+    out.append(f'<line x1="{left}" x2="{left + plot_w}" y1="{axis_y}" y2="{axis_y}" stroke="#444"/>')
+    step = max(1, int(nice_step(max(top_step - 1, 1), 8)))
+    for s in range(1, top_step + 1, step):
+        out.append(f'<text x="{_f(sx(s))}" y="{axis_y + 14}" font-size="11" text-anchor="middle">{s}</text>')
+    out.append(f'<text x="{left + plot_w / 2}" y="{axis_y + 28}" font-size="11" text-anchor="middle">'
+               f'decoding step (target position)</text></svg>')
     return Markup("".join(out))

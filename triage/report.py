@@ -69,7 +69,8 @@ MODEL_LABELS = [("path", "model directory"), ("sha256", "sha256 of the model fil
 DATA_LABELS = [("path", "data file"), ("sha256", "sha256 of the data file"), ("format", "format"),
                ("rows", "rows read"), ("outputs", "outputs")]
 SWEEP_KEYS = (("widen", "Wider beams"), ("beam_curve", "Score by beam width"),
-              ("length_penalty", "Other length penalties"), ("exact", "Exact search"))
+              ("length_penalty", "Other length penalties"), ("where_lost", "Where the beam lost the reference"),
+              ("exact", "Exact search"))
 COLUMN_LABELS = {
     "beam": "beam width", "resolved_share": "search-side rows resolved", "resolved": "resolved rows",
     "corpus_delta": "change in corpus metric", "time_ratio": "decode time (x)", "metric": "metric",
@@ -261,7 +262,41 @@ def _penalty_block(lp: dict[str, Any]) -> dict[str, Any]:
     return {"lines": lines, "tables": [t for t in tables if t], "notes": []}
 
 
-SWEEP_VIEWS = {"widen": _widen_block, "beam_curve": _curve_block, "length_penalty": _penalty_block}
+def _where_lost_block(w: dict[str, Any]) -> dict[str, Any]:
+    lines = [
+        f"For each of the {fmt_value(w.get('rows'))} search-side rows, triage's own beam search re-ran the decoder "
+        f"with the reference tracked: the step (target position) where the reference prefix fell out of the beam, "
+        f"its rank among the candidates there, and the smallest beam width (up to {fmt_value(w.get('max_width'))}) "
+        f"that keeps it to the end.",
+    ]
+    if w.get("kept_to_end"):
+        lines.append(f"{fmt_value(w.get('kept_to_end'))} rows kept the reference to the end but finished it "
+                     "below the output.")
+    widths = [{"beam": k, "rows": v} for k, v in sorted((w.get("keeps_at_beam") or {}).items(), key=lambda kv: int(kv[0]))]
+    spec = [("beam", "smallest beam width that keeps the reference", "int"), ("rows", "rows", "int")]
+    notes = []
+    if w.get("not_kept_up_to_max"):
+        notes.append(f"{fmt_value(w.get('not_kept_up_to_max'))} rows lose the reference even at width "
+                     f"{fmt_value(w.get('max_width'))}.")
+    return {"lines": lines, "chart": charts.loss_steps(w.get("by_bucket") or []),
+            "tables": [t for t in [_table("Width needed", spec, widths)] if t], "notes": notes}
+
+
+def _exact_block(e: dict[str, Any]) -> dict[str, Any]:
+    lines = [
+        f"Bounded depth-first exact search on {fmt_value(e.get('rows'))} compared failed rows whose output has at most "
+        f"{fmt_value(e.get('max_output_tokens'))} tokens (budget {fmt_value(e.get('max_nodes'))} nodes and "
+        f"{fmt_value(e.get('max_seconds'))} s per row): {fmt_value(e.get('proven'))} proven, "
+        f"{fmt_value(e.get('budget reached'))} reached the budget.",
+        f"On {fmt_value(e.get('beats_output'))} rows the search found an output the model scores above the decoder's "
+        f"output (a search error of the beam, whatever the reference); on {fmt_value(e.get('empty_best'))} rows the "
+        f"proven best output is empty.",
+    ]
+    return {"lines": lines, "tables": [], "notes": []}
+
+
+SWEEP_VIEWS = {"widen": _widen_block, "beam_curve": _curve_block, "length_penalty": _penalty_block,
+               "where_lost": _where_lost_block, "exact": _exact_block}
 
 
 def sweep_blocks(summary: dict[str, Any]) -> list[dict[str, Any]]:
@@ -341,7 +376,7 @@ def _row_extras(r: dict[str, Any], tok: dict[str, Any] | None) -> list[tuple[str
     """Optional per-row results from other stages: lost_at* (where the beam dropped the reference), exact*."""
     extras = []
     for k, v in r.items():
-        if (k.startswith("lost_at") or k.startswith("exact")) and not (v is None or (isinstance(v, float) and math.isnan(v))) \
+        if (k.startswith(("lost_", "exact", "keeps_at_beam"))) and not (v is None or (isinstance(v, float) and math.isnan(v))) \
                 and v != "":
             extras.append((k.replace("_", " "), fmt_value(v)))
     for k in ("lost_at", "exact"):
