@@ -11,6 +11,9 @@ Conventions
   after the start token, WITHOUT the end token: triage appends ``end_id`` itself.
 - ``next_logprobs`` returns natural-log probabilities over the whole vocabulary, float32,
   already log-softmax normalized (rules such as banned words are applied by triage on top).
+- Optional ``default_settings``: the DecoderSettings your outputs were decoded with (beam,
+  penalty, alpha, length limit). Without it triage assumes greedy search with a length limit of
+  ``max_target_tokens`` (or transformers' default of 19 new tokens when that is None).
 - ``state`` is whatever ``encode`` returns; it holds one entry per batch row. ``select``
   picks rows of it (and of the cache) by index: beam search uses it to repeat a source per
   beam and to reorder beams after each step.

@@ -66,6 +66,8 @@ def model_settings(model: Any, **overrides: Any) -> DecoderSettings:
     if isinstance(base, DecoderSettings):
         return base.replace(**{k: v for k, v in overrides.items() if v is not None})
     kw = {"eos_token_ids": (model.end_id,), "decoder_start_token_id": model.start_id, "pad_token_id": model.pad_id}
+    if getattr(model, "max_target_tokens", None):
+        kw["max_new_tokens"] = int(model.max_target_tokens)
     kw.update({k: v for k, v in overrides.items() if v is not None})
     return DecoderSettings(origin="defaults", **kw)
 
