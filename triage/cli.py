@@ -110,6 +110,8 @@ def build_parser() -> argparse.ArgumentParser:
     g = r.add_argument_group("run")
     g.add_argument("--out", metavar="DIR", help="output folder (default reports/<dev-set name>)")
     g.add_argument("--token-budget", type=int, default=4096, help="tokens per scoring batch (default 4096)")
+    g.add_argument("--chunk-rows", type=int, default=256, metavar="N",
+                   help="rows scored between two writes of the score cache (default 256)")
     g.add_argument("--no-cache", action="store_true", help="do not read or write the score cache")
     g.add_argument("--cache-dir", metavar="DIR", help="score cache folder (default <out>/.cache)")
     g.add_argument("--quiet", action="store_true", help="no progress bars")
@@ -151,6 +153,8 @@ def cmd_run(a: argparse.Namespace) -> int:
         edges = parse_edges(a.buckets) if a.buckets else None
     except ValueError as exc:
         raise OptionError(str(exc)) from None
+    if a.chunk_rows < 1:
+        raise OptionError(f"--chunk-rows must be at least 1, got {a.chunk_rows}")
     if a.beam is not None and a.beam < 1:
         raise OptionError(f"--beam must be at least 1, got {a.beam}")
 
@@ -184,7 +188,8 @@ def cmd_run(a: argparse.Namespace) -> int:
     redecode = parse_alphas(a.redecode_alpha) if a.redecode_alpha else None
     options = TriageOptions(metric=a.metric, below=a.below,
                             margin=DEFAULT_MARGIN if a.margin is None else a.margin,
-                            bucket_by=a.bucket_by, token_budget=a.token_budget, progress=not a.quiet)
+                            bucket_by=a.bucket_by, token_budget=a.token_budget, progress=not a.quiet,
+                            chunk_rows=a.chunk_rows)
     if edges:
         options.edges = edges
     if not a.no_cache:
@@ -273,8 +278,8 @@ def main(argv: list[str] | None = None) -> int:
         print(f"triage: error: {exc.one_line()}", file=sys.stderr)
         return exc.exit_code
     except KeyboardInterrupt as exc:
-        done = f" ({exc})" if str(exc) else ""
-        print(f"triage: interrupted{done}; the previous outputs are left as they were; "
+        what = str(exc) if str(exc).startswith("interrupted") else "interrupted"
+        print(f"triage: {what}; the previous outputs are left as they were; "
               "a rerun takes the scored rows from the cache", file=sys.stderr)
         return 130
     except BrokenPipeError:
