@@ -8,6 +8,7 @@ timings live in run.json only.
 
 from __future__ import annotations
 
+import csv
 import json
 import math
 import os
@@ -55,7 +56,10 @@ def atomic_write(path: Path, text: str) -> None:
 
 
 def verdicts_csv(frame) -> str:
-    return frame.to_csv(index=False, lineterminator="\n")
+    # with "\n" line ends the csv module quotes a cell holding "\n" but not one holding a bare "\r",
+    # which every CSV reader takes for a line end; when a cell has one, every cell is quoted
+    bare_cr = any(frame[c].map(lambda x: isinstance(x, str) and "\r" in x).any() for c in frame.columns)
+    return frame.to_csv(index=False, lineterminator="\n", quoting=csv.QUOTE_ALL if bare_cr else csv.QUOTE_MINIMAL)
 
 
 def tokens_jsonl(tokens: list[dict[str, Any]]) -> str:
