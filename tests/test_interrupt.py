@@ -84,10 +84,12 @@ def test_sigint_while_scoring_then_rerun_from_cache(tmp_path, capsys, tiny_model
     assert "Traceback" not in stderr
     msg = [line for line in stderr.splitlines() if line.startswith("triage: interrupted")]
     assert len(msg) == 1, stderr
-    # "interrupted after scoring N of 600 failed rows" (every row fails: outputs differ from references)
+    # "interrupted after scoring N failed rows in the first M of 600 rows" (every row fails: outputs differ
+    # from references, so N == M)
     words = msg[0].split()
     done = int(words[words.index("scoring") + 1])
-    assert f"of {N_ROWS} failed rows" in msg[0] and 0 < done < N_ROWS
+    first = int(words[words.index("first") + 1])
+    assert f"failed rows in the first {first} of {N_ROWS} rows" in msg[0] and 0 < done == first < N_ROWS
     assert "previous outputs are left as they were" in msg[0]
     assert _snapshot(out) == before  # previous run's files byte-identical, nothing added beside them
     assert sorted(p.name for p in out.iterdir()) == sorted([*before, ".cache"])

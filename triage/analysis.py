@@ -66,15 +66,21 @@ def search_share(counts: dict[str, int]) -> tuple[int, int]:
 
 def bucket_table(frame: pd.DataFrame, edges: Sequence[int]) -> pd.DataFrame:
     """Counts and shares of each verdict per bucket, with a 95% Wilson interval on the search share."""
-    order = ([f"<{edges[0]}"] if (frame["bucket_length"] < edges[0]).any() else []) + bucket_labels(edges)
+    by_bucket = {label: verdict_counts(part["verdict"]) for label, part in frame.groupby("bucket", sort=False)}
+    return bucket_table_from_counts(by_bucket, edges)
+
+
+def bucket_table_from_counts(by_bucket: dict[str, dict[str, int]], edges: Sequence[int]) -> pd.DataFrame:
+    """bucket_table from verdict counts per bucket label (running totals of a streamed run)."""
+    below = f"<{edges[0]}"
+    order = ([below] if by_bucket.get(below) else []) + bucket_labels(edges)
     rows = []
     for label in order:
-        part = frame[frame["bucket"] == label]
-        counts = verdict_counts(part["verdict"])
+        counts = {v: int((by_bucket.get(label) or {}).get(v, 0)) for v in VERDICTS}
         k, n = search_share(counts)
         lo, hi = wilson_interval(k, n)
         failed = sum(counts[v] for v in FAILED)
-        row: dict[str, Any] = {"range": label, "rows": len(part), "failed": failed}
+        row: dict[str, Any] = {"range": label, "rows": sum(counts.values()), "failed": failed}
         row.update(counts)
         row["search_share"] = k / n if n else float("nan")
         row["search_low"], row["search_high"] = lo, hi

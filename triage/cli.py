@@ -110,8 +110,9 @@ def build_parser() -> argparse.ArgumentParser:
     g = r.add_argument_group("run")
     g.add_argument("--out", metavar="DIR", help="output folder (default reports/<dev-set name>)")
     g.add_argument("--token-budget", type=int, default=4096, help="tokens per scoring batch (default 4096)")
-    g.add_argument("--chunk-rows", type=int, default=256, metavar="N",
-                   help="rows scored between two writes of the score cache (default 256)")
+    g.add_argument("--chunk-rows", type=int, default=1000, metavar="N",
+                   help="dev-set rows per step: decoded, scored, cached and written together (default 1000); "
+                   "memory grows with this, not with the dev set")
     g.add_argument("--no-cache", action="store_true", help="do not read or write the score cache")
     g.add_argument("--cache-dir", metavar="DIR", help="score cache folder (default <out>/.cache)")
     g.add_argument("--quiet", action="store_true", help="no progress bars")
@@ -158,11 +159,15 @@ def cmd_run(a: argparse.Namespace) -> int:
     if a.beam is not None and a.beam < 1:
         raise OptionError(f"--beam must be at least 1, got {a.beam}")
 
-    from .devset import read_devset
+    from .devset import read_devset, stream_devset
 
     t0 = time.perf_counter()
-    dev = read_devset(a.data, source=a.source, references=a.reference or None, output=a.output,
-                      columns=_columns(a.column) or None, fmt=a.format)
+    # decoding sweeps and search checks work on rows held in memory; otherwise the dev set streams
+    # through in steps of --chunk-rows rows, checked in full first (a first pass that keeps nothing)
+    in_memory = bool(a.widen or a.beam_curve or a.redecode_alpha or a.where_lost or a.exact)
+    where = dict(source=a.source, references=a.reference or None, output=a.output,
+                 columns=_columns(a.column) or None, fmt=a.format)
+    dev = read_devset(a.data, **where) if in_memory else stream_devset(a.data, **where).check()
     out_dir = Path(a.out) if a.out else Path("reports") / dev.name
 
     if a.threads:
@@ -180,7 +185,7 @@ def cmd_run(a: argparse.Namespace) -> int:
                                   source_prefix=a.prefix)
     except ValueError as exc:
         raise OptionError(str(exc)) from None
-    from .sweeps import estimate_seconds, parse_alphas, parse_widths, run_sweeps
+    from .sweeps import PenaltyTally, estimate_seconds, parse_alphas, parse_widths, run_sweeps
 
     # sweep options are checked before anything is scored, so a typo costs no scoring time
     widths = parse_widths(a.widen, settings.beam) if a.widen else None
@@ -194,35 +199,43 @@ def cmd_run(a: argparse.Namespace) -> int:
         options.edges = edges
     if not a.no_cache:
         options.cache_dir = Path(a.cache_dir) if a.cache_dir else out_dir / ".cache"
+    from .analysis import recommend
+    from .outputs import RunWriter
     from .pipeline import model_info, run_triage
 
     info = model_info(model, a.model)
-    result = run_triage(model, dev, settings, options, model_info=info)
-
     plan = dict(widen=widths, beam_curve_max=a.beam_curve, alphas=alphas, redecode_alpha=redecode,
                 max_rows=a.max_rows, seed=a.seed)
-    if widths or a.beam_curve or redecode:
-        est = estimate_seconds(model, result, **plan)
-        print(f"triage: sweeps estimated at {est['seconds']:.0f} s (measured on {est['sample_rows']} rows)",
-              file=sys.stderr)
-    extra = run_sweeps(model, result, **plan, progress=not a.quiet, devset=dev, length_penalty=True)
-    result.summary.update(extra)
-    if a.where_lost or a.exact:
-        from .search_checks import run_search_checks
+    with RunWriter(out_dir) as writer:
+        if in_memory:
+            result = run_triage(model, dev, settings, options, model_info=info)
+            if widths or a.beam_curve or redecode:
+                est = estimate_seconds(model, result, **plan)
+                print(f"triage: sweeps estimated at {est['seconds']:.0f} s (measured on {est['sample_rows']} rows)",
+                      file=sys.stderr)
+            result.summary.update(run_sweeps(model, result, **plan, progress=not a.quiet, devset=dev,
+                                             length_penalty=True))
+            if a.where_lost or a.exact:
+                from .search_checks import run_search_checks
 
-        run_search_checks(model, result, where_lost_rows=a.where_lost, exact=a.exact, progress=not a.quiet)
-    from .analysis import recommend
-
-    result.summary["recommendation"] = recommend(result.summary["counts"], result.summary)
-    from .outputs import write_run
-
-    run_info = {
-        "created": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
-        "elapsed_s": round(time.perf_counter() - t0, 2),
-        "command": "triage " + " ".join(sys.argv[1:]),
-        "cache": result.cache,
-    }
-    write_run(result, out_dir, run_info)
+                run_search_checks(model, result, where_lost_rows=a.where_lost, exact=a.exact,
+                                  progress=not a.quiet)
+            writer.add(result.verdicts, result.tokens)
+        else:
+            # the length-penalty re-ranking needs no row kept: it is tallied step by step
+            penalty = PenaltyTally(settings, options.margin, options.metric, alphas)
+            result = run_triage(model, dev, settings, options, model_info=info, keep=False,
+                                on_step=[writer.add_step, penalty.add_step])
+            result.summary.update(run_sweeps(model, result, alphas=alphas, progress=not a.quiet,
+                                             length_penalty=True, penalty_tally=penalty))
+        result.summary["recommendation"] = recommend(result.summary["counts"], result.summary)
+        run_info = {
+            "created": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+            "elapsed_s": round(time.perf_counter() - t0, 2),
+            "command": "triage " + " ".join(sys.argv[1:]),
+            "cache": result.cache,
+        }
+        writer.finish(result.summary, run_info)
     _print_summary(result, out_dir, run_info)
     return 0
 

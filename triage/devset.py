@@ -135,6 +135,58 @@ def iter_devset_chunks(
     return _chunks(spec, chunk_rows, {})
 
 
+def stream_devset(
+    path: str | None = None,
+    *,
+    source: str | None = None,
+    references: list[str] | None = None,
+    output: str | None = None,
+    columns: dict[str, str] | None = None,
+    fmt: str | None = None,
+) -> DevSetStream:
+    """The dev set as a stream: read from disk step by step, never whole (see DevSetStream)."""
+    spec = _Spec.make(path, source, references, output, columns, fmt)
+    return DevSetStream(spec, spec.display, spec.fmt, spec.name)
+
+
+@dataclass
+class DevSetStream:
+    """A dev set read from disk in chunks each time it is iterated, so it never has to fit in memory.
+
+    ``check()`` reads it through once: every error the file holds is raised before any work is
+    done on it, and ``rows``, ``sha256`` and ``has_output`` are known afterwards (they are also
+    filled in whenever ``chunks`` reaches the end). Memory while reading: one chunk, plus one id
+    per row for the duplicate-id check.
+    """
+
+    spec: _Spec
+    path: str
+    fmt: str
+    name: str
+    rows: int | None = None
+    sha256: str | None = None
+    has_output: bool | None = None
+
+    def chunks(self, chunk_rows: int = 10000) -> Iterator[pd.DataFrame]:
+        """DataFrames of exactly ``chunk_rows`` rows (the last one may be shorter), columns as DevSet.frame."""
+        if chunk_rows < 1:
+            raise OptionError(f"chunk_rows must be at least 1, got {chunk_rows}")
+        meta: dict = {}
+        count = 0
+        for frame in _chunks(self.spec, chunk_rows, meta):
+            count += len(frame)
+            yield frame
+        if self.sha256 is not None and meta["sha256"] != self.sha256:
+            raise InputError("the file changed while it was being read (its sha256 differs from the first reading)",
+                             path=self.path, hint="run again once the file is no longer being written")
+        self.rows, self.sha256, self.has_output = count, meta["sha256"], meta["has_output"]
+
+    def check(self, chunk_rows: int = 10000) -> DevSetStream:
+        for _ in self.chunks(chunk_rows):
+            pass
+        return self
+
+
 # ----------------------------------------------------------------------------- arguments
 
 

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 from collections.abc import Sequence
 
 METRICS = ("chrf", "bleu")
@@ -31,11 +32,46 @@ def corpus_score(name: str, outputs: Sequence[str], references: Sequence[Sequenc
 
 def corpus(name: str, outputs: Sequence[str], references: Sequence[Sequence[str]]) -> tuple[float, str]:
     """(corpus score, sacrebleu signature)."""
-    m = _metric(name, sentence=False)
-    depth = max((len(r) for r in references), default=1)
-    streams = [[refs[k] if k < len(refs) else "" for refs in references] for k in range(depth)]
-    if depth > 1:
-        # sacrebleu treats an empty string as "no reference" only when it is None-like; keep the first stream full
-        streams = [streams[0]] + [[r if r else None for r in s] for s in streams[1:]]
-    score = float(m.corpus_score(list(outputs), streams).score)
-    return score, str(m.get_signature())
+    stats = CorpusStats(name)
+    stats.add(outputs, references)
+    return stats.score()
+
+
+class CorpusStats:
+    """sacrebleu's corpus score, built up part by part.
+
+    sacrebleu computes a corpus score from the sum of per-segment statistics (n-gram matches
+    and lengths, integers), so summing those statistics over parts of the corpus and scoring
+    the sum gives exactly the score of one call over the whole corpus, with memory that does
+    not grow with it. Rows may have different numbers of references (missing ones count as
+    none, as sacrebleu treats them).
+    """
+
+    def __init__(self, name: str):
+        self.metric = _metric(name, sentence=False)
+        self.total: list | None = None
+        self.segments = 0
+        self.ref_counts: set[int] = set()  # references per segment seen (the signature's nrefs)
+
+    def add(self, outputs: Sequence[str], references: Sequence[Sequence[str]]) -> None:
+        if not outputs:
+            return
+        depth = max(len(r) for r in references)
+        streams = [[refs[k] if k < len(refs) else "" for refs in references] for k in range(depth)]
+        if depth > 1:
+            # sacrebleu treats an empty string as "no reference" only when it is None-like; keep the first stream full
+            streams = [streams[0]] + [[r if r else None for r in s] for s in streams[1:]]
+        self.metric._check_corpus_score_args(list(outputs), streams)
+        part = [list(x) for x in self.metric._extract_corpus_statistics(list(outputs), streams)]
+        self.total = [sum(col) for col in zip(*([self.total] if self.total else []), *part, strict=True)]
+        self.segments += len(outputs)
+        self.ref_counts.add(self.metric.num_refs)
+
+    def score(self) -> tuple[float, str]:
+        """(corpus score, sacrebleu signature); NaN before any segment."""
+        if self.total is None:
+            return math.nan, ""
+        score = float(self.metric._compute_score_from_stats(list(self.total)).score)
+        self.metric.num_refs = self.ref_counts.pop() if len(self.ref_counts) == 1 else -1  # as one call sets it
+        self.ref_counts.add(self.metric.num_refs)
+        return score, str(self.metric.get_signature())

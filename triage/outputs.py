@@ -55,30 +55,103 @@ def atomic_write(path: Path, text: str) -> None:
         raise
 
 
-def verdicts_csv(frame) -> str:
-    # with "\n" line ends the csv module quotes a cell holding "\n" but not one holding a bare "\r",
-    # which every CSV reader takes for a line end; when a cell has one, every cell is quoted
-    bare_cr = any(frame[c].map(lambda x: isinstance(x, str) and "\r" in x).any() for c in frame.columns)
-    return frame.to_csv(index=False, lineterminator="\n", quoting=csv.QUOTE_ALL if bare_cr else csv.QUOTE_MINIMAL)
+def verdicts_csv(frame, header: bool = True) -> str:
+    """Rows of verdicts.csv. With "\n" line ends the csv module quotes a cell holding "\n" but
+    not one holding a bare "\r", which every CSV reader takes for a line end: a row with one has
+    every cell quoted (decided row by row, so the bytes do not depend on how rows were grouped)."""
+    cr = frame.apply(lambda col: col.map(lambda x: isinstance(x, str) and "\r" in x)).any(axis=1).tolist() \
+        if len(frame) and len(frame.columns) else []
+    if not any(cr):
+        return frame.to_csv(index=False, header=header, lineterminator="\n")
+    parts = [frame.iloc[:0].to_csv(index=False, lineterminator="\n")] if header else []
+    start = 0
+    for k in range(1, len(cr) + 1):
+        if k == len(cr) or cr[k] != cr[start]:
+            parts.append(frame.iloc[start:k].to_csv(index=False, header=False, lineterminator="\n",
+                                                    quoting=csv.QUOTE_ALL if cr[start] else csv.QUOTE_MINIMAL))
+            start = k
+    return "".join(parts)
 
 
 def tokens_jsonl(tokens: list[dict[str, Any]]) -> str:
     return "".join(json.dumps(_clean(t), ensure_ascii=False, allow_nan=False) + "\n" for t in tokens)
 
 
+class RunWriter:
+    """Writes a run folder as the rows arrive (its add_step is an on_step hook of pipeline.run_triage).
+
+    verdicts.csv and tokens.jsonl are appended part by part to temporary files beside their
+    final names; the report keeps only what its page shows (report.PageRows). finish() writes
+    summary.json, run.json and report.html, then renames every file into place. Until then the
+    previous run's files stay as they were; leaving a with-block by an exception (Ctrl-C, a bad
+    row far into the file) removes the temporary files.
+
+        with RunWriter(out_dir) as writer:
+            result = run_triage(model, stream, keep=False, on_step=writer.add_step)
+            writer.finish(result.summary, run_info)
+    """
+
+    def __init__(self, out_dir: str | os.PathLike):
+        from .report import PageRows
+
+        self.out = Path(out_dir)
+        self.out.mkdir(parents=True, exist_ok=True)
+        self.page = PageRows()
+        self._files: dict[str, tuple[str, Any]] = {}  # final name -> (temporary path, open handle)
+        self._header = True
+
+    def _temp(self, name: str):
+        if name not in self._files:
+            fd, tmp = tempfile.mkstemp(dir=self.out, prefix=f".{name}.", suffix=".tmp")
+            self._files[name] = (tmp, os.fdopen(fd, "w", encoding="utf-8", newline=""))
+        return self._files[name][1]
+
+    def add(self, verdicts, tokens: list[dict[str, Any]]) -> None:
+        self._temp("verdicts.csv").write(verdicts_csv(verdicts, header=self._header))
+        self._header = False
+        self._temp("tokens.jsonl").write(tokens_jsonl(tokens))
+        self.page.add(verdicts, tokens)
+
+    def add_step(self, part) -> None:
+        """A pipeline step (pipeline.ChunkResult), as run_triage's on_step hands it over."""
+        self.add(part.verdicts, part.tokens)
+
+    def finish(self, summary: dict[str, Any], run_info: dict[str, Any] | None = None) -> Path:
+        from .report import render_page
+
+        run_info = run_info or {}
+        self._temp("verdicts.csv")
+        self._temp("tokens.jsonl")
+        for name, text in (("summary.json", dumps(summary)), ("run.json", dumps(run_info)),
+                           ("report.html", render_page(summary, self.page, run_info))):
+            self._temp(name).write(text)
+        umask = os.umask(0)
+        os.umask(umask)
+        for _, fh in self._files.values():
+            fh.close()
+        for name in FILES:  # in this order: the report, which reads the others, lands last
+            tmp, _ = self._files[name]
+            os.chmod(tmp, 0o666 & ~umask)  # mkstemp creates 0600; give the files the usual permissions
+            os.replace(tmp, self.out / name)
+        self._files.clear()
+        return self.out
+
+    def abort(self) -> None:
+        for tmp, fh in self._files.values():
+            fh.close()
+            if os.path.exists(tmp):
+                os.unlink(tmp)
+        self._files.clear()
+
+    def __enter__(self) -> RunWriter:
+        return self
+
+    def __exit__(self, *exc: Any) -> None:
+        self.abort()  # after finish() there is nothing left to remove
+
+
 def write_run(result, out_dir: str | os.PathLike, run_info: dict[str, Any] | None = None) -> Path:
     """Write the run's files under out_dir (created if needed) and return the folder."""
-    out = Path(out_dir)
-    texts = {
-        "verdicts.csv": verdicts_csv(result.verdicts),
-        "summary.json": dumps(result.summary),
-        "tokens.jsonl": tokens_jsonl(result.tokens),
-        "run.json": dumps(run_info or {}),
-    }
-    from .report import render_report
-
-    html = render_report(result.summary, result.verdicts, result.tokens, run_info or {})
-    for name, text in texts.items():
-        atomic_write(out / name, text)
-    atomic_write(out / "report.html", html)
-    return out
+    with RunWriter(out_dir) as writer:
+        writer.add(result.verdicts, result.tokens)
+        return writer.finish(result.summary, run_info)

@@ -7,24 +7,34 @@
     result.buckets         # counts per length bucket with the search share's 95% interval
     result.summary         # what summary.json holds
 
+The dev set goes through in steps of ``options.chunk_rows`` rows: decode (when it has no
+outputs), find the failed rows, score them (through the score cache), label every row. The
+summary is built from running totals (a Tally), never from all rows at once. So a dev set of
+any size can stream through: ``run_triage(model, stream_devset(path), keep=False,
+on_step=writer.add_step)`` hands each step's rows on (outputs.RunWriter appends them to the
+run's files) and keeps none of them; memory is then bounded by the step size, plus 8 bytes per compared row
+(the score gaps, for their median and histogram).
+
 Writing files (verdicts.csv, summary.json, tokens.jsonl, report.html) is outputs.py's job.
 """
 
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from array import array
+from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
 import pandas as pd
 
 from . import __version__
-from .analysis import DEFAULT_EDGES, assign_bucket, bucket_table, recommend, search_share, verdict_counts
-from .metrics import corpus, sentence_scores
+from .analysis import DEFAULT_EDGES, assign_bucket, bucket_table_from_counts, recommend, search_share
+from .errors import OptionError
+from .metrics import CorpusStats, sentence_scores
 from .scoring import ScoreRequest, TargetScore, score_requests
 from .settings import DecoderSettings
-from .verdicts import FAILED, decide, matches_any
+from .verdicts import COMPARED, FAILED, VERDICTS, decide, matches_any
 
 DEFAULT_MARGIN = 1e-4
 
@@ -41,12 +51,12 @@ class TriageOptions:
     token_budget: int = 4096
     progress: bool = True
     cache_dir: str | None = None        # score cache folder (None: no cache)
-    chunk_rows: int = 256               # rows scored (and cached) per chunk
+    chunk_rows: int = 1000              # dev-set rows per step: decoded, scored, cached and written together
 
 
 @dataclass
 class TriageResult:
-    verdicts: pd.DataFrame
+    verdicts: pd.DataFrame | None       # None when run with keep=False (the rows went to on_step)
     buckets: pd.DataFrame
     summary: dict[str, Any]
     tokens: list[dict[str, Any]]
@@ -54,6 +64,46 @@ class TriageResult:
     options: TriageOptions
     scores: dict[int, tuple[list[TargetScore], TargetScore]] = field(default_factory=dict, repr=False)
     cache: dict[str, int] | None = None  # rows from the score cache / scored now (not part of summary.json)
+
+
+@dataclass
+class ChunkResult:
+    """One step of a run: its rows' verdicts (input order), token records and scores."""
+
+    offset: int                         # dev-set index of the step's first row
+    verdicts: pd.DataFrame
+    tokens: list[dict[str, Any]]
+    scores: dict[int, tuple[list[TargetScore], TargetScore]]  # dev-set row index -> scores (failed rows)
+    outputs: list[str]
+    references: list[list[str]]
+    decoded: bool                       # some outputs were decoded here
+
+
+class Tally:
+    """The running totals summary.json is built from, added to one step at a time."""
+
+    def __init__(self, options: TriageOptions):
+        self.rows = 0
+        self.counts = dict.fromkeys(VERDICTS, 0)
+        self.by_bucket: dict[str, dict[str, int]] = {}
+        self.gaps = array("d")              # score gap of every compared row, in input order
+        self.skipped: dict[str, int] = {}   # reason -> rows, in order of first appearance
+        self.at_limit = 0
+        self.corpus = CorpusStats(options.metric)
+        self.decoded = False
+
+    def add(self, part: ChunkResult) -> None:
+        v = part.verdicts
+        self.rows += len(v)
+        for verdict, bucket in zip(v["verdict"], v["bucket"], strict=True):
+            self.counts[verdict] += 1
+            self.by_bucket.setdefault(bucket, dict.fromkeys(VERDICTS, 0))[verdict] += 1
+        self.gaps.extend(float(x) for x in v.loc[v["verdict"].isin(COMPARED), "score_gap"])
+        for reason in v.loc[v["verdict"] == "skipped", "reason"]:
+            self.skipped[reason] = self.skipped.get(reason, 0) + 1
+        self.at_limit += int(v["out_hit_limit"].sum())
+        self.corpus.add(part.outputs, part.references)
+        self.decoded = self.decoded or part.decoded
 
 
 def model_settings(model: Any, **overrides: Any) -> DecoderSettings:
@@ -72,10 +122,28 @@ def model_settings(model: Any, **overrides: Any) -> DecoderSettings:
     return DecoderSettings(origin="defaults", **kw)
 
 
-def _bar(total: int, desc: str, enabled: bool):
+def _bar(total: int | None, desc: str, enabled: bool):
     from tqdm.auto import tqdm
 
     return tqdm(total=total, desc=desc, unit="row", disable=not enabled or total == 0, leave=False)
+
+
+class ScoringInterrupted(KeyboardInterrupt):
+    """Ctrl-C during a run; the failed rows of the finished steps were scored (and cached) before it."""
+
+    def __init__(self, scored: int, rows_done: int, rows_total: int | None):
+        of = f" of {rows_total}" if rows_total is not None else ""
+        super().__init__(f"interrupted after scoring {scored} failed rows in the first {rows_done}{of} rows")
+        self.scored, self.rows_done, self.rows_total = scored, rows_done, rows_total
+
+
+def _frames(devset: Any, chunk_rows: int) -> tuple[Iterator[pd.DataFrame], int | None]:
+    """The dev set in steps of chunk_rows rows, and its row count when known beforehand."""
+    if hasattr(devset, "chunks"):  # a DevSetStream: read from disk step by step
+        return devset.chunks(chunk_rows), getattr(devset, "rows", None)
+    frame = (devset.frame if hasattr(devset, "frame") else devset).reset_index(drop=True)
+    steps = (frame.iloc[k : k + chunk_rows].reset_index(drop=True) for k in range(0, len(frame), chunk_rows))
+    return steps, len(frame)
 
 
 def run_triage(
@@ -85,12 +153,58 @@ def run_triage(
     options: TriageOptions | None = None,
     *,
     model_info: dict[str, Any] | None = None,
+    keep: bool = True,
+    on_step: Callable[[ChunkResult], None] | Sequence[Callable[[ChunkResult], None]] = (),
 ) -> TriageResult:
-    """Triage a dev set (a DevSet from read_devset, or a DataFrame with id, source, references, output)."""
+    """Triage a dev set: a DevSet from read_devset, a DataFrame with id, source, references,
+    output, or a DevSetStream from stream_devset.
+
+    on_step: called with each step's ChunkResult, in input order (e.g. outputs.RunWriter.add_step,
+    which appends the rows to the run's files). keep=False keeps no rows (result.verdicts is None,
+    result.scores empty): memory then no longer grows with the dev set.
+    """
     options = options or TriageOptions()
     settings = settings or model_settings(model)
-    frame = devset.frame if hasattr(devset, "frame") else devset
-    frame = frame.reset_index(drop=True)
+    if options.chunk_rows < 1:
+        raise OptionError(f"rows per step must be at least 1, got {options.chunk_rows}")
+    steps, total = _frames(devset, options.chunk_rows)
+    consumers = [on_step] if callable(on_step) else list(on_step)
+    tally = Tally(options)
+    parts: list[pd.DataFrame] = []
+    tokens: list[dict[str, Any]] = []
+    kept: dict[int, tuple[list[TargetScore], TargetScore]] = {}
+    cache = _open_cache(model, settings, options)
+    done = scored = 0
+    try:
+        with _bar(total, "triage", options.progress) as bar:
+            for frame in steps:
+                part = _triage_step(model, frame, settings, options, done, cache)
+                tally.add(part)
+                for consume in consumers:
+                    consume(part)
+                if keep:
+                    parts.append(part.verdicts)
+                    tokens.extend(part.tokens)
+                    kept.update(part.scores)
+                done += len(frame)
+                scored += len(part.scores)
+                bar.update(len(frame))
+    except KeyboardInterrupt:
+        raise ScoringInterrupted(scored, done, total) from None
+    finally:
+        if cache is not None:
+            cache.close()
+    buckets = bucket_table_from_counts(tally.by_bucket, options.edges) if tally.rows else pd.DataFrame()
+    summary = _summary(tally, buckets, settings, options, devset, model, model_info)
+    verdicts = (pd.concat(parts, ignore_index=True) if len(parts) > 1 else parts[0] if parts
+                else pd.DataFrame()) if keep else None
+    stats = {"hits": cache.hits, "misses": cache.misses} if cache is not None else None
+    return TriageResult(verdicts, buckets, summary, tokens if keep else [], settings, options, kept, stats)
+
+
+def _triage_step(model, frame: pd.DataFrame, settings: DecoderSettings, options: TriageOptions, offset: int,
+                 cache) -> ChunkResult:
+    """One step: rows offset .. offset + len(frame) - 1 of the dev set."""
     n = len(frame)
     sources = [settings.source_prefix + s for s in frame["source"].tolist()]
     references = [list(r) for r in frame["references"].tolist()]
@@ -102,8 +216,7 @@ def run_triage(
         from .decode import decode
 
         todo = [i for i, o in enumerate(outputs) if o is None]
-        with _bar(len(todo), "decoding", options.progress) as bar:
-            dec = decode(model, settings, [src_ids[i] for i in todo], progress=bar.update)
+        dec = decode(model, settings, [src_ids[i] for i in todo])
         for i, d in zip(todo, dec, strict=True):
             outputs[i] = d.text
 
@@ -133,16 +246,16 @@ def run_triage(
                     for text, ids in zip(references[i] + [outputs[i]], targets, strict=True)]
         if any(problems):
             unscorable[i] = (src_problem, problems)
-    scored, cache_stats = _score_rows(model, settings, options, requests, [unscorable.get(i) for i in fail_idx])
+    scored = _score_rows(model, settings, options, cache, requests, [unscorable.get(i) for i in fail_idx])
 
     # ---- verdicts, one row per input row in input order
     rows: list[dict[str, Any]] = []
     tokens: list[dict[str, Any]] = []
     kept: dict[int, tuple[list[TargetScore], TargetScore]] = {}
     by_row = dict(zip(fail_idx, scored, strict=True))
+    ids, lines = frame["id"].tolist(), frame["line"].tolist() if "line" in frame else None
     for i in range(n):
-        rec = frame.iloc[i]
-        row: dict[str, Any] = {"id": rec["id"], "line": int(rec["line"]) if "line" in frame else i + 1}
+        row: dict[str, Any] = {"id": ids[i], "line": int(lines[i]) if lines is not None else offset + i + 1}
         ref_texts = references[i]
         best = 0
         if not failed[i]:
@@ -157,7 +270,7 @@ def run_triage(
                 v.reason = f"source: {unscorable[i][0]}"
             row.update(verdict=v.verdict, reason=v.reason)
             best = v.best_ref if v.best_ref is not None else 0
-            kept[i] = (ref_s, out_s)
+            kept[offset + i] = (ref_s, out_s)
         r = ref_s[best] if ref_s else None
         row.update(
             ref_logprob=_num(r.logprob_sum) if r else math.nan,
@@ -174,12 +287,12 @@ def run_triage(
         row["ref_words"] = len(ref_texts[best].split())
         row["out_words"] = len(outputs[i].split())
         row[options.metric] = round(metric_values[i], 6)
-        row["source"] = frame.iloc[i]["source"]
+        row["source"] = frame["source"].iat[i]
         row["reference"] = ref_texts[best]
         row["output"] = outputs[i]
         rows.append(row)
         if out_s is not None:
-            tokens.append(_token_record(model, rec["id"], r, out_s))
+            tokens.append(_token_record(model, ids[i], r, out_s))
 
     verdicts = pd.DataFrame(rows)
     if n:
@@ -187,14 +300,7 @@ def run_triage(
                         _bucket_lengths(model, options.bucket_by, frame, references, verdicts))
         verdicts.insert(verdicts.columns.get_loc("bucket_length"), "bucket",
                         [assign_bucket(int(x), options.edges) for x in verdicts["bucket_length"]])
-        buckets = bucket_table(verdicts, options.edges)
-    else:
-        buckets = pd.DataFrame()
-    summary = _summary(verdicts, buckets, settings, options, devset, model, model_info, decoded_here,
-                       outputs, references)
-    result = TriageResult(verdicts, buckets, summary, tokens, settings, options, kept)
-    result.cache = cache_stats
-    return result
+    return ChunkResult(offset, verdicts, tokens, kept, outputs, references, decoded_here)
 
 
 def _special_ids(model) -> set[int]:
@@ -254,7 +360,7 @@ def _unknown_parts(model, text: str, unk: int, most: int = 5) -> str:
     return ", ".join(repr(w) for w in found[:most]) + more
 
 
-def _score_rows(model, settings, options, requests, problems):
+def _score_rows(model, settings, options, cache, requests, problems):
     """Score the requests, leaving out targets with a known problem: they come back skipped."""
     kept_req = []
     for req, prob in zip(requests, problems, strict=True):
@@ -265,7 +371,7 @@ def _score_rows(model, settings, options, requests, problems):
         if keep:
             kept_req.append(ScoreRequest(req.source_ids, [req.targets[j] for j in keep],
                                          [req.allow_no_end[j] for j in keep]))
-    scored, stats = _score_with_cache(model, settings, options, kept_req)
+    scored = _score_with_cache(model, settings, options, cache, kept_req)
     it = iter(scored)
     results = []
     for req, prob in zip(requests, problems, strict=True):
@@ -276,51 +382,35 @@ def _score_rows(model, settings, options, requests, problems):
         results.append([next(part) if p is None else
                         TargetScore(list(t), [], math.nan, len(t) + 1, math.nan, skipped=p)
                         for t, p in zip(req.targets, prob[1], strict=True)])
-    return results, stats
+    return results
 
 
-class ScoringInterrupted(KeyboardInterrupt):
-    """Ctrl-C during scoring; `done` rows were scored (and cached) before it."""
+def _open_cache(model, settings: DecoderSettings, options: TriageOptions):
+    if options.cache_dir is None:
+        return None
+    from .cache import ScoreCache
 
-    def __init__(self, done: int, total: int):
-        super().__init__(f"interrupted after scoring {done} of {total} failed rows")
-        self.done, self.total = done, total
+    return ScoreCache(options.cache_dir, model.fingerprint(), settings.fingerprint())
 
 
-def _score_with_cache(model, settings, options, requests):
-    cache = None
-    if options.cache_dir is not None:
-        from .cache import ScoreCache
-
-        cache = ScoreCache(options.cache_dir, model.fingerprint(), settings.fingerprint())
+def _score_with_cache(model, settings, options, cache, requests):
+    """Scores of one step's requests: from the cache where it has them, the rest scored together
+    and committed to the cache as one batch (so a resumed run batches as a clean one)."""
     results: list = [None] * len(requests)
     todo = []
     for k, req in enumerate(requests):
-        hit = cache.get(req) if cache else None
+        hit = cache.get(req) if cache is not None else None
         if hit is not None:
             results[k] = hit
         else:
             todo.append(k)
-    done = len(requests) - len(todo)
-    try:
-        with _bar(len(requests), "scoring", options.progress) as bar:
-            bar.update(done)
-            for start in range(0, len(todo), options.chunk_rows):
-                chunk = todo[start : start + options.chunk_rows]
-                out = score_requests(model, settings, [requests[k] for k in chunk],
-                                     token_budget=options.token_budget, progress=bar.update)
-                for k, r in zip(chunk, out, strict=True):
-                    results[k] = r
-                if cache:
-                    cache.put_many([(requests[k], r) for k, r in zip(chunk, out, strict=True)])
-                done += len(chunk)
-    except KeyboardInterrupt:
-        raise ScoringInterrupted(done, len(requests)) from None
-    finally:
-        if cache:
-            cache.close()
-    stats = {"hits": cache.hits, "misses": cache.misses} if cache else None
-    return results, stats
+    if todo:
+        out = score_requests(model, settings, [requests[k] for k in todo], token_budget=options.token_budget)
+        for k, r in zip(todo, out, strict=True):
+            results[k] = r
+        if cache is not None:
+            cache.put_many([(requests[k], r) for k, r in zip(todo, out, strict=True)])
+    return results
 
 
 def model_info(model, spec: str) -> dict[str, Any]:
@@ -370,13 +460,11 @@ def _token_record(model, row_id, ref: TargetScore | None, out: TargetScore) -> d
     return {"id": row_id, "reference": side(ref), "output": side(out)}
 
 
-def _summary(verdicts, buckets, settings, options, devset, model, model_info, decoded_here, outputs,
-             references) -> dict[str, Any]:
-    counts = verdict_counts(verdicts["verdict"]) if len(verdicts) else {}
+def _summary(tally: Tally, buckets, settings, options, devset, model, model_info) -> dict[str, Any]:
+    counts = dict(tally.counts) if tally.rows else {}
     k, n = search_share(counts)
     failed = sum(counts.get(v, 0) for v in FAILED)
-    score, sig = corpus(options.metric, outputs, references) if len(verdicts) else (math.nan, "")
-    gaps = verdicts.loc[verdicts["verdict"].isin(["search", "model", "tie"]), "score_gap"] if len(verdicts) else []
+    score, sig = tally.corpus.score()
     summary: dict[str, Any] = {
         "tool": {"name": "triage", "version": __version__},
         "model": model_info or {"fingerprint": model.fingerprint()},
@@ -384,8 +472,8 @@ def _summary(verdicts, buckets, settings, options, devset, model, model_info, de
             "path": getattr(devset, "path", None),
             "sha256": getattr(devset, "sha256", None),
             "format": getattr(devset, "fmt", None),
-            "rows": int(len(verdicts)),
-            "outputs": "decoded by triage" if decoded_here else "given",
+            "rows": tally.rows,
+            "outputs": "decoded by triage" if tally.decoded else "given",
         },
         "settings": settings.to_dict(),
         "objective": settings.signature(),
@@ -412,11 +500,11 @@ def _summary(verdicts, buckets, settings, options, devset, model, model_info, de
             }
             for _, b in buckets.iterrows()
         ],
-        "score_gap": _describe(gaps),
+        "score_gap": _describe(tally.gaps),
         "corpus_metric": {"name": options.metric, "score": score, "signature": sig},
-        "skipped_reasons": verdicts.loc[verdicts["verdict"] == "skipped", "reason"].value_counts().to_dict()
-        if len(verdicts) else {},
-        "outputs_at_length_limit": int(verdicts["out_hit_limit"].sum()) if len(verdicts) else 0,
+        # most frequent first; equal counts in order of first appearance
+        "skipped_reasons": dict(sorted(tally.skipped.items(), key=lambda kv: -kv[1])),
+        "outputs_at_length_limit": tally.at_limit,
     }
     summary["recommendation"] = recommend(counts)
     return summary

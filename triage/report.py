@@ -12,6 +12,7 @@ import base64
 import hashlib
 import json
 import math
+from array import array
 from pathlib import Path
 from typing import Any
 
@@ -20,9 +21,9 @@ from markupsafe import Markup
 
 from . import charts
 from .settings import DecoderSettings
+from .verdicts import COMPARED
 
 VERDICT_ORDER = ("search", "model", "tie", "blocked", "skipped", "correct")
-COMPARED = ("search", "model", "tie")
 
 ACTIONS = {
     "widen-beam": "Widen the beam",
@@ -388,10 +389,8 @@ def _row_extras(r: dict[str, Any], tok: dict[str, Any] | None) -> list[tuple[str
     return extras
 
 
-def _rows(verdicts: pd.DataFrame, tokens: list[dict[str, Any]], metric: str,
+def _rows(failed: pd.DataFrame, by_id: dict[str, dict[str, Any]], metric: str,
           settings: DecoderSettings | None) -> list[dict[str, Any]]:
-    by_id = {str(t.get("id")): t for t in tokens}
-    failed = verdicts[verdicts["verdict"] != "correct"] if len(verdicts) else verdicts
     out = []
     for r in failed.to_dict("records"):
         tok = by_id.get(str(r.get("id")))
@@ -411,6 +410,68 @@ def _rows(verdicts: pd.DataFrame, tokens: list[dict[str, Any]], metric: str,
         )
         out.append(row)
     return out
+
+
+PAGE_ROWS_PER_VERDICT = 1000
+
+
+class PageRows:
+    """What the page shows of a run's rows, gathered part by part, so that a run of any size
+    makes a page of bounded size: the margin (score gap) of every compared row, for the
+    histogram, and the first `per_verdict` failed rows of each verdict, in input order, with
+    their token records. verdicts.csv keeps every row."""
+
+    def __init__(self, per_verdict: int | None = None):
+        self.per_verdict = per_verdict or PAGE_ROWS_PER_VERDICT
+        self.rows = 0                       # rows seen
+        self.failed = 0                     # failed rows seen
+        self.taken: dict[str, int] = {}     # verdict -> rows kept
+        self.parts: list[pd.DataFrame] = []
+        self.tokens: dict[str, dict[str, Any]] = {}
+        self.wanted: set[str] = set()       # ids of the kept rows
+        self.gaps = array("d")
+        self.nonfinite = 0                  # compared rows with an infinite margin
+        self.columns: list[str] = []
+
+    def add(self, verdicts: pd.DataFrame, tokens: list[dict[str, Any]]) -> None:
+        self.add_rows(verdicts)
+        self.add_tokens(tokens)
+
+    def add_rows(self, verdicts: pd.DataFrame) -> None:
+        self.rows += len(verdicts)
+        if not len(verdicts):
+            return
+        self.columns = self.columns or list(verdicts.columns)
+        failed = verdicts[verdicts["verdict"] != "correct"]
+        self.failed += len(failed)
+        for gap in failed.loc[failed["verdict"].isin(COMPARED), "score_gap"]:
+            if _finite(gap):
+                self.gaps.append(float(gap))
+            else:
+                self.nonfinite += 1
+        rank = failed.groupby("verdict", sort=False).cumcount() + failed["verdict"].map(
+            lambda v: self.taken.get(v, 0))
+        keep = failed[rank < self.per_verdict]
+        for v, k in keep["verdict"].value_counts().items():
+            self.taken[v] = self.taken.get(v, 0) + int(k)
+        if len(keep):
+            self.parts.append(keep)
+            self.wanted.update(str(x) for x in keep["id"])
+
+    def add_tokens(self, tokens: list[dict[str, Any]]) -> None:
+        for t in tokens:
+            key = str(t.get("id"))
+            if key in self.wanted:
+                self.tokens[key] = t
+
+    def frame(self) -> pd.DataFrame:
+        if not self.parts:
+            return pd.DataFrame(columns=self.columns)
+        return pd.concat(self.parts, ignore_index=True) if len(self.parts) > 1 else self.parts[0]
+
+    @property
+    def shown(self) -> int:
+        return sum(len(p) for p in self.parts)
 
 
 def _penalty(settings: DecoderSettings | None, length: Any) -> str:
@@ -466,25 +527,33 @@ def _labelled(d: Any, labels: list[tuple[str, str]], always: tuple[str, ...] = (
 
 def render_report(summary: dict[str, Any], verdicts: pd.DataFrame, tokens: list[dict[str, Any]],
                   run_info: dict[str, Any]) -> str:
+    """The page for a run held in memory (its verdicts frame and token records)."""
+    page = PageRows()
+    page.add(verdicts, tokens)
+    return render_page(summary, page, run_info)
+
+
+def render_page(summary: dict[str, Any], page: PageRows, run_info: dict[str, Any]) -> str:
     env = _env()
     script, script_hash = _script(env)
     summary = summary or {}
     run_info = run_info or {}
     options = summary.get("options") or {}
-    metric = options.get("metric") or ("chrf" if "chrf" in verdicts else "bleu")
+    metric = options.get("metric") or ("chrf" if "chrf" in page.columns else "bleu")
     settings = _settings(summary)
-    rows = _rows(verdicts, tokens, metric, settings)
+    rows = _rows(page.frame(), page.tokens, metric, settings)
     counts = summary.get("counts") or {}
     buckets = summary.get("buckets") or []
-    gaps = [r["gap"] for r in rows if r.get("verdict") in COMPARED]
-    nonfinite = sum(1 for r in rows if r.get("verdict") in COMPARED and r["gap"] is None)
+    gaps = list(page.gaps)
+    nonfinite = page.nonfinite
     rec = summary.get("recommendation") or {}
     action = rec.get("action", "inconclusive")
     sweeps = sweep_blocks(summary)
     s = summary.get("settings") or {}
     settings_items, settings_unset = _labelled(s, SETTINGS_LABELS, ("beam", "penalty", "alpha"), skip_unset=True)
     return env.get_template("report.html.j2").render(
-        s=summary, run=run_info, rows=rows, n_rows=len(verdicts), metric=metric,
+        s=summary, run=run_info, rows=rows, n_rows=page.rows, n_failed=page.failed, per_verdict=page.per_verdict,
+        metric=metric,
         counts=counts, buckets=buckets, verdict_order=[v for v in VERDICT_ORDER if v in counts] or list(VERDICT_ORDER),
         labels=charts.LABELS, colours=charts.COLOURS, ink=charts.INK,
         action=action, action_text=ACTIONS.get(action, action), action_meaning=ACTION_MEANING.get(action, ""),
@@ -508,12 +577,7 @@ def render_report(summary: dict[str, Any], verdicts: pd.DataFrame, tokens: list[
 TEXT_COLUMNS = ("id", "verdict", "reason", "bucket", "source", "reference", "output")
 
 
-def load_run(run_dir: str | Path) -> tuple[dict[str, Any], pd.DataFrame, list[dict[str, Any]], dict[str, Any]]:
-    """The run's files as render_report takes them. Text cells stay text ("NaN" is a word);
-    the other columns become numbers (empty cell: missing) or booleans where they can."""
-    run_dir = Path(run_dir)
-    summary = json.loads((run_dir / "summary.json").read_text(encoding="utf-8"))
-    verdicts = pd.read_csv(run_dir / "verdicts.csv", dtype=str, keep_default_na=False)
+def _typed(verdicts: pd.DataFrame) -> pd.DataFrame:
     for col in verdicts.columns:
         if col in TEXT_COLUMNS:
             continue
@@ -525,19 +589,52 @@ def load_run(run_dir: str | Path) -> tuple[dict[str, Any], pd.DataFrame, list[di
             verdicts[col] = pd.to_numeric(cells.replace("", math.nan))
         except (ValueError, TypeError):
             pass
-    tokens_path = run_dir / "tokens.jsonl"
-    tokens = [json.loads(x) for x in tokens_path.read_text(encoding="utf-8").splitlines() if x.strip()] \
-        if tokens_path.exists() else []
+    return verdicts
+
+
+def _verdict_parts(run_dir: Path, rows: int = 20_000):
+    """verdicts.csv in parts of `rows` rows. Text cells stay text ("NaN" is a word); the other
+    columns become numbers (empty cell: missing) or booleans where they can."""
+    with pd.read_csv(run_dir / "verdicts.csv", dtype=str, keep_default_na=False, chunksize=rows) as reader:
+        for part in reader:
+            yield _typed(part)
+
+
+def _token_records(run_dir: Path):
+    path = run_dir / "tokens.jsonl"
+    if path.exists():
+        with open(path, encoding="utf-8", newline="") as fh:
+            for line in fh:  # lines end in "\n" only; U+2028 and the like stay inside a record
+                if line.strip():
+                    yield json.loads(line)
+
+
+def _json_files(run_dir: Path) -> tuple[dict[str, Any], dict[str, Any]]:
+    summary = json.loads((run_dir / "summary.json").read_text(encoding="utf-8"))
     run_path = run_dir / "run.json"
     run_info = json.loads(run_path.read_text(encoding="utf-8")) if run_path.exists() else {}
-    return summary, verdicts, tokens, run_info
+    return summary, run_info
+
+
+def load_run(run_dir: str | Path) -> tuple[dict[str, Any], pd.DataFrame, list[dict[str, Any]], dict[str, Any]]:
+    """The run's files, whole, as render_report takes them (for a notebook; rerender reads them in parts)."""
+    run_dir = Path(run_dir)
+    summary, run_info = _json_files(run_dir)
+    verdicts = _typed(pd.read_csv(run_dir / "verdicts.csv", dtype=str, keep_default_na=False))
+    return summary, verdicts, list(_token_records(run_dir)), run_info
 
 
 def rerender(run_dir: str | Path) -> Path:
-    """Re-render report.html from the run directory alone."""
+    """Re-render report.html from the run directory alone, reading its rows in parts."""
     from .outputs import atomic_write
 
-    summary, verdicts, tokens, run_info = load_run(run_dir)
-    out = Path(run_dir) / "report.html"
-    atomic_write(out, render_report(summary, verdicts, tokens, run_info))
+    run_dir = Path(run_dir)
+    summary, run_info = _json_files(run_dir)
+    page = PageRows()
+    for part in _verdict_parts(run_dir):
+        page.add_rows(part)
+    for rec in _token_records(run_dir):
+        page.add_tokens([rec])
+    out = run_dir / "report.html"
+    atomic_write(out, render_page(summary, page, run_info))
     return out

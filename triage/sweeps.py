@@ -295,82 +295,111 @@ def sweep_beam_curve(model, result, max_beam: int, *, references, ref_kind, max_
 
 
 # --------------------------------------------------------------------------- length penalty
+class PenaltyTally:
+    """Reference against output re-ranked under other length penalties, one compared row at a
+    time: every number is a count or a running sum, so a streamed run can feed it step by step
+    (`add_step`) and keep no row. `section()` gives the summary's "length_penalty" section."""
+
+    def __init__(self, settings: DecoderSettings, margin: float, metric: str,
+                 alphas: Sequence[float] | None = None):
+        self.settings, self.margin, self.metric = settings, margin, metric
+        self.alphas = list(DEFAULT_ALPHAS if alphas is None else alphas)
+        self.base_beam = settings.beam if settings.beam > 1 else 2
+        self.cells = [(form, float(a), settings.replace(beam=self.base_beam, penalty=form, alpha=float(a)))
+                      for form in FORMS for a in self.alphas]
+        self.grid = [{"counts": dict.fromkeys(COMPARED, 0), "model_to_search": 0, "search_to_model": 0}
+                     for _ in self.cells]
+        self.rows = 0
+        self.brevity: dict[str | None, dict[str, float]] = {}  # None: all rows; else per bucket
+
+    def add(self, verdict: str, bucket: str, best_ref: int, ref_scores: Sequence[TargetScore],
+            out_score: TargetScore) -> None:
+        """One compared row: its current verdict, bucket, best reference (0-based) and scores."""
+        self.rows += 1
+        for (_, _, s), cell in zip(self.cells, self.grid, strict=True):
+            lab = _label(best_reference_score(s, ref_scores), rescore(s, out_score), self.margin)
+            cell["counts"][lab] += 1
+            cell["model_to_search"] += verdict == "model" and lab == "search"
+            cell["search_to_model"] += verdict == "search" and lab == "model"
+        out_len, ref_len = out_score.length, ref_scores[best_ref].length
+        for key in (None, bucket):
+            b = self.brevity.setdefault(key, {"rows": 0, "model_rows": 0, "shorter": 0, "ratio_model": 0.0,
+                                              "ratio_all": 0.0})
+            b["rows"] += 1
+            b["ratio_all"] += out_len / ref_len
+            if verdict == "model":
+                b["model_rows"] += 1
+                b["shorter"] += out_len < ref_len
+                b["ratio_model"] += out_len / ref_len
+
+    def add_step(self, part) -> None:
+        """A pipeline step (pipeline.ChunkResult): its compared rows, in input order."""
+        v = part.verdicts
+        for j in range(len(v)):
+            if v["verdict"].iat[j] in COMPARED and part.offset + j in part.scores:
+                ref_s, out_s = part.scores[part.offset + j]
+                self.add(v["verdict"].iat[j], v["bucket"].iat[j], int(v["best_ref"].iat[j]) - 1, ref_s, out_s)
+
+    def section(self, bucket_order: Sequence[str]) -> dict[str, Any]:
+        settings = self.settings
+        n_model = (self.brevity.get(None) or {}).get("model_rows", 0)
+        section: dict[str, Any] = {
+            "metric": self.metric,
+            "current": {"penalty": settings.penalty, "alpha": settings.alpha, "beam": settings.beam},
+            "rescored_at_beam": self.base_beam,
+            "note": None if self.base_beam == settings.beam else
+            "greedy search (beam 1) applies no length penalty; ranks are for a beam of 2 or more",
+            "rows": self.rows, "margin": self.margin, "grid": [], "best": None, "brevity": None, "redecode": [],
+            "interrupted": False,
+        }
+        for (form, a, _), cell in zip(self.cells, self.grid, strict=True):
+            section["grid"].append({"penalty": form, "alpha": a, "counts": dict(cell["counts"]),
+                                    "model_to_search": cell["model_to_search"],
+                                    "search_to_model": cell["search_to_model"],
+                                    "flip_share": _share(cell["model_to_search"], n_model)})
+        if section["grid"]:
+            cur_alpha = settings.alpha
+            best = max(section["grid"], key=lambda g: (g["model_to_search"] - g["search_to_model"],
+                                                       -abs(g["alpha"] - cur_alpha), g["penalty"] == settings.penalty))
+            section["best"] = {k: best[k] for k in ("penalty", "alpha", "model_to_search", "search_to_model",
+                                                    "flip_share")}
+        section["brevity"] = self._brevity(None)
+        section["brevity"].pop("rows")
+        section["brevity"]["buckets"] = [{"range": label, **{k: x for k, x in self._brevity(label).items()
+                                                             if k != "shorter"}}
+                                         for label in bucket_order if label in self.brevity]
+        return section
+
+    def _brevity(self, key: str | None) -> dict[str, Any]:
+        b = self.brevity.get(key) or {"rows": 0, "model_rows": 0, "shorter": 0, "ratio_model": 0.0, "ratio_all": 0.0}
+        m = int(b["model_rows"])
+        return {"rows": int(b["rows"]), "model_rows": m, "shorter": int(b["shorter"]),
+                "short_share": _share(int(b["shorter"]), m),
+                "length_ratio": b["ratio_model"] / m if m else None,
+                "length_ratio_all": b["ratio_all"] / b["rows"] if b["rows"] else None}
+
+
 def sweep_length_penalty(model, result, alphas: Sequence[float] | None, *, redecode_alpha=None,
                          references=None, devset=None, max_rows=None, seed=0, progress=True,
-                         state: dict | None = None) -> dict[str, Any]:
-    """Re-rank reference vs output over penalty forms x alphas; optionally decode at some alphas."""
+                         state: dict | None = None, tally: PenaltyTally | None = None) -> dict[str, Any]:
+    """Re-rank reference vs output over penalty forms x alphas; optionally decode at some alphas.
+
+    tally: a PenaltyTally already fed with the rows (a streamed run); otherwise the rows of
+    `result` are fed here."""
     settings, opts, v = result.settings, result.options, result.verdicts
-    margin = opts.margin
-    alphas = list(DEFAULT_ALPHAS if alphas is None else alphas)
-    base_beam = settings.beam if settings.beam > 1 else 2
-    rows = [i for i in range(len(v)) if v["verdict"].iat[i] in COMPARED and i in result.scores]
-    current = {i: v["verdict"].iat[i] for i in rows}
-    n_model = sum(1 for i in rows if current[i] == "model")
-    section: dict[str, Any] = {
-        "metric": opts.metric,
-        "current": {"penalty": settings.penalty, "alpha": settings.alpha, "beam": settings.beam},
-        "rescored_at_beam": base_beam,
-        "note": None if base_beam == settings.beam else
-        "greedy search (beam 1) applies no length penalty; ranks are for a beam of 2 or more",
-        "rows": len(rows), "margin": margin, "grid": [], "best": None, "brevity": None, "redecode": [],
-        "interrupted": False,
-    }
+    if tally is None:
+        tally = PenaltyTally(settings, opts.margin, opts.metric, alphas)
+        for i in range(len(v)):
+            if v["verdict"].iat[i] in COMPARED and i in result.scores:
+                ref_s, out_s = result.scores[i]
+                tally.add(v["verdict"].iat[i], v["bucket"].iat[i], int(v["best_ref"].iat[i]) - 1, ref_s, out_s)
+    order = list(dict.fromkeys(result.buckets["range"].tolist())) if len(result.buckets) else []
+    section = tally.section(order)
     if state is not None:
         state["length_penalty"] = section
-    for form in FORMS:
-        for a in alphas:
-            s = settings.replace(beam=base_beam, penalty=form, alpha=float(a))
-            counts = dict.fromkeys(COMPARED, 0)
-            m2s = s2m = 0
-            for i in rows:
-                ref_s, out_s = result.scores[i]
-                lab = _label(best_reference_score(s, ref_s), rescore(s, out_s), margin)
-                counts[lab] += 1
-                m2s += current[i] == "model" and lab == "search"
-                s2m += current[i] == "search" and lab == "model"
-            section["grid"].append({"penalty": form, "alpha": float(a), "counts": counts,
-                                    "model_to_search": m2s, "search_to_model": s2m,
-                                    "flip_share": _share(m2s, n_model)})
-    if section["grid"]:
-        cur_alpha = settings.alpha
-        best = max(section["grid"], key=lambda g: (g["model_to_search"] - g["search_to_model"],
-                                                   -abs(g["alpha"] - cur_alpha), g["penalty"] == settings.penalty))
-        section["best"] = {k: best[k] for k in ("penalty", "alpha", "model_to_search", "search_to_model",
-                                                "flip_share")}
-    section["brevity"] = _brevity(result, rows, current)
-
     if redecode_alpha:
-        section["redecode"] = []
         _redecode(model, result, list(redecode_alpha), section, references, devset, max_rows, seed, progress)
     return section
-
-
-def _brevity(result, rows, current) -> dict[str, Any]:
-    v = result.verdicts
-
-    def lengths(i):
-        ref_s, out_s = result.scores[i]
-        b = int(v["best_ref"].iat[i]) - 1
-        return out_s.length, ref_s[b].length
-
-    def part(sel):
-        model_rows = [i for i in sel if current[i] == "model"]
-        shorter = sum(1 for i in model_rows if lengths(i)[0] < lengths(i)[1])
-        return {
-            "model_rows": len(model_rows), "shorter": shorter, "short_share": _share(shorter, len(model_rows)),
-            "length_ratio": _mean([lengths(i)[0] / lengths(i)[1] for i in model_rows]),
-            "length_ratio_all": _mean([lengths(i)[0] / lengths(i)[1] for i in sel]),
-        }
-
-    out = part(rows)
-    out["buckets"] = []
-    order = list(dict.fromkeys(result.buckets["range"].tolist())) if len(result.buckets) else []
-    for label in order:
-        sel = [i for i in rows if v["bucket"].iat[i] == label]
-        if sel:
-            out["buckets"].append({"range": label, "rows": len(sel), **{k: x for k, x in part(sel).items()
-                                                                        if k != "shorter"}})
-    return out
 
 
 def _redecode(model, result, alphas, section, references, devset, max_rows, seed, progress) -> None:
@@ -416,7 +445,7 @@ class Sweeps(dict):
 def run_sweeps(model, result, *, widen: Sequence[int] | None = None, beam_curve_max: int | None = None,
                alphas: Sequence[float] | None = None, redecode_alpha: Sequence[float] | None = None,
                max_rows: int | None = None, seed: int = 0, progress: bool = True, devset: Any = None,
-               length_penalty: bool | None = None) -> dict[str, Any]:
+               length_penalty: bool | None = None, penalty_tally: PenaltyTally | None = None) -> dict[str, Any]:
     """Run the asked-for sweeps on a TriageResult; returns the keys to merge into the summary.
 
     widen: wider beam widths (see parse_widths); beam_curve_max: decode at widths 1..this;
@@ -424,7 +453,9 @@ def run_sweeps(model, result, *, widen: Sequence[int] | None = None, beam_curve_
     alphas or redecode_alpha is given, or length_penalty=True); redecode_alpha: decode all
     (sampled) rows again at these alphas and re-triage them; max_rows: a seeded sample of at
     most this many rows per decoding sweep; devset: the dev set given to run_triage (for all
-    references of multi-reference rows; without it each row keeps its best reference).
+    references of multi-reference rows; without it each row keeps its best reference);
+    penalty_tally: a PenaltyTally fed step by step during a streamed run (run_triage with
+    keep=False), used instead of the result's rows for the length-penalty re-ranking.
 
     Returned: a Sweeps dict {"widen": .., "beam_curve": .., "length_penalty": .. (those run),
     "sweeps_interrupted": bool}; per-row tables are in its `.tables` ({"widen": DataFrame of the
@@ -432,7 +463,8 @@ def run_sweeps(model, result, *, widen: Sequence[int] | None = None, beam_curve_
     """
     if max_rows is not None and max_rows < 1:
         raise OptionError(f"max rows must be at least 1, got {max_rows}")
-    references, ref_kind = _references(result, devset)
+    decodes = bool(widen or beam_curve_max or redecode_alpha)
+    references, ref_kind = _references(result, devset) if decodes else (None, None)
     out = Sweeps(sweeps_interrupted=False)
     state: dict[str, Any] = {}
     if length_penalty is None:
@@ -443,7 +475,7 @@ def run_sweeps(model, result, *, widen: Sequence[int] | None = None, beam_curve_
             step = "length_penalty"
             out["length_penalty"] = sweep_length_penalty(
                 model, result, alphas, redecode_alpha=redecode_alpha, references=references, devset=devset,
-                max_rows=max_rows, seed=seed, progress=progress, state=state)
+                max_rows=max_rows, seed=seed, progress=progress, state=state, tally=penalty_tally)
         if widen:
             step = "widen"
             out["widen"], out.tables["widen"] = sweep_widen(

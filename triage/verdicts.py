@@ -19,11 +19,14 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
-from .scoring import TargetScore
+if TYPE_CHECKING:  # the report imports this module and renders without torch
+    from .scoring import TargetScore
 
 VERDICTS = ("correct", "search", "model", "tie", "blocked", "skipped")
 FAILED = ("search", "model", "tie", "blocked", "skipped")
+COMPARED = ("search", "model", "tie")  # failed rows whose two scores could be compared
 
 
 def normalize_ws(text: str) -> str:
