@@ -174,11 +174,12 @@ def run_triage(
     tokens: list[dict[str, Any]] = []
     kept: dict[int, tuple[list[TargetScore], TargetScore]] = {}
     cache = _open_cache(model, settings, options)
-    done = scored = 0
+    counts = {"rows": 0, "scored": 0}  # rows of the steps scored so far, and their failed rows
+    done = 0
     try:
         with _bar(total, "triage", options.progress) as bar:
             for frame in steps:
-                part = _triage_step(model, frame, settings, options, done, cache)
+                part = _triage_step(model, frame, settings, options, done, cache, counts, bar.update)
                 tally.add(part)
                 for consume in consumers:
                     consume(part)
@@ -187,10 +188,8 @@ def run_triage(
                     tokens.extend(part.tokens)
                     kept.update(part.scores)
                 done += len(frame)
-                scored += len(part.scores)
-                bar.update(len(frame))
     except KeyboardInterrupt:
-        raise ScoringInterrupted(scored, done, total) from None
+        raise ScoringInterrupted(counts["scored"], counts["rows"], total) from None
     finally:
         if cache is not None:
             cache.close()
@@ -203,20 +202,21 @@ def run_triage(
 
 
 def _triage_step(model, frame: pd.DataFrame, settings: DecoderSettings, options: TriageOptions, offset: int,
-                 cache) -> ChunkResult:
-    """One step: rows offset .. offset + len(frame) - 1 of the dev set."""
+                 cache, counts: dict[str, int], progress: Callable[[int], Any] = lambda k: None) -> ChunkResult:
+    """One step: rows offset .. offset + len(frame) - 1 of the dev set. `progress(k)` is told
+    of each row finished (rows to decode as they are decoded, the others at the end); `counts`
+    of the step's rows and failed rows the moment their scores are committed to the cache."""
     n = len(frame)
     sources = [settings.source_prefix + s for s in frame["source"].tolist()]
     references = [list(r) for r in frame["references"].tolist()]
     src_ids = model.tokenize_sources(sources) if n else []
 
     outputs = frame["output"].tolist() if "output" in frame else [None] * n
-    decoded_here = any(o is None for o in outputs)
-    if decoded_here:
+    todo = [i for i, o in enumerate(outputs) if o is None]
+    if todo:
         from .decode import decode
 
-        todo = [i for i, o in enumerate(outputs) if o is None]
-        dec = decode(model, settings, [src_ids[i] for i in todo])
+        dec = decode(model, settings, [src_ids[i] for i in todo], progress=progress)
         for i, d in zip(todo, dec, strict=True):
             outputs[i] = d.text
 
@@ -246,7 +246,13 @@ def _triage_step(model, frame: pd.DataFrame, settings: DecoderSettings, options:
                     for text, ids in zip(references[i] + [outputs[i]], targets, strict=True)]
         if any(problems):
             unscorable[i] = (src_problem, problems)
-    scored = _score_rows(model, settings, options, cache, requests, [unscorable.get(i) for i in fail_idx])
+
+    def committed() -> None:
+        counts["rows"] += n
+        counts["scored"] += len(fail_idx)
+
+    scored = _score_rows(model, settings, options, cache, requests, [unscorable.get(i) for i in fail_idx],
+                         committed)
 
     # ---- verdicts, one row per input row in input order
     rows: list[dict[str, Any]] = []
@@ -300,7 +306,8 @@ def _triage_step(model, frame: pd.DataFrame, settings: DecoderSettings, options:
                         _bucket_lengths(model, options.bucket_by, frame, references, verdicts))
         verdicts.insert(verdicts.columns.get_loc("bucket_length"), "bucket",
                         [assign_bucket(int(x), options.edges) for x in verdicts["bucket_length"]])
-    return ChunkResult(offset, verdicts, tokens, kept, outputs, references, decoded_here)
+    progress(n - len(todo))
+    return ChunkResult(offset, verdicts, tokens, kept, outputs, references, bool(todo))
 
 
 def _special_ids(model) -> set[int]:
@@ -360,7 +367,7 @@ def _unknown_parts(model, text: str, unk: int, most: int = 5) -> str:
     return ", ".join(repr(w) for w in found[:most]) + more
 
 
-def _score_rows(model, settings, options, cache, requests, problems):
+def _score_rows(model, settings, options, cache, requests, problems, committed):
     """Score the requests, leaving out targets with a known problem: they come back skipped."""
     kept_req = []
     for req, prob in zip(requests, problems, strict=True):
@@ -372,6 +379,7 @@ def _score_rows(model, settings, options, cache, requests, problems):
             kept_req.append(ScoreRequest(req.source_ids, [req.targets[j] for j in keep],
                                          [req.allow_no_end[j] for j in keep]))
     scored = _score_with_cache(model, settings, options, cache, kept_req)
+    committed()
     it = iter(scored)
     results = []
     for req, prob in zip(requests, problems, strict=True):
