@@ -18,7 +18,7 @@ import torch
 from transformers import LogitsProcessor, LogitsProcessorList
 
 sys.path.insert(0, str(Path(__file__).parent))
-from tiny_models import END, make_marian, random_sources  # noqa: E402
+from tinymodels import END, make_wrapped_marian, random_sources  # noqa: E402
 
 from triage.beam import beam_search, smallest_width_keeping  # noqa: E402
 from triage.settings import DecoderSettings  # noqa: E402
@@ -32,7 +32,7 @@ EARLY = (True, False, "never")
 
 @pytest.fixture(scope="module", params=[0, 3], ids=["marian-seed0", "marian-seed3"])
 def marian(request):
-    model = make_marian(request.param)
+    model = make_wrapped_marian(request.param)
     return model, random_sources(12, seed=request.param + 10)
 
 
@@ -115,7 +115,7 @@ def test_matches_generate_over_widths_penalties_and_early_stopping(marian):
     dict(forced_bos_token_id=9, min_length=3),
 ])
 def test_matches_generate_with_rules(rule):
-    model = make_marian(0)
+    model = make_wrapped_marian(0)
     sources = random_sources(6, seed=10)
     s = base_settings(model).replace(beam=4, alpha=1.0, **rule)
     for (w_ids, w_score), h in zip(generate(model, s, sources), beam_search(model, s, sources), strict=True):
@@ -128,7 +128,7 @@ def test_greedy_with_banning_rules_picks_generates_tokens(rule):
     # rules that only ban tokens pick the same argmax on logits (generate) and on log-probs
     # (triage); the scores differ by design: triage sums the rule-processed log-probs, which
     # for a token that is not banned equal log_softmax of the raw logits (output_logits).
-    model = make_marian(0)
+    model = make_wrapped_marian(0)
     sources = random_sources(6, seed=10)
     s = base_settings(model).replace(beam=1, **rule)
     for (w_ids, w_score), h in zip(generate(model, s, sources, logits=True), beam_search(model, s, sources),
@@ -138,7 +138,7 @@ def test_greedy_with_banning_rules_picks_generates_tokens(rule):
 
 
 def test_several_end_tokens_match_generate():
-    model = make_marian(0)
+    model = make_wrapped_marian(0)
     sources = random_sources(8, seed=10)
     s = base_settings(model).replace(beam=3, alpha=0.7, eos_token_ids=(END, 7, 11))
     for (w_ids, w_score), h in zip(generate(model, s, sources), beam_search(model, s, sources), strict=True):
@@ -148,7 +148,7 @@ def test_several_end_tokens_match_generate():
 
 def test_width_one_is_greedy_decoding():
     # common practice: beam width 1 is greedy search, the best token at every step, plain sum
-    model = make_marian(3)
+    model = make_wrapped_marian(3)
     sources = random_sources(6, seed=13)
     s = base_settings(model).replace(beam=1)
     got = beam_search(model, s, sources)
@@ -173,7 +173,7 @@ def test_width_one_is_greedy_decoding():
 def test_objective_gnmt_uses_its_divisor():
     # gnmt has no counterpart in generate; the score must be the settings' objective of the
     # emitted tokens' summed log-probs, and at alpha 0 gnmt, power and none decode the same
-    model = make_marian(0)
+    model = make_wrapped_marian(0)
     sources = random_sources(6, seed=10)
     base = base_settings(model).replace(beam=4)
     g = beam_search(model, base.replace(penalty="gnmt", alpha=1.0), sources)
@@ -197,7 +197,7 @@ class RunningBeams(LogitsProcessor):
 
 
 def test_tracking_agrees_with_the_beams_transformers_keeps():
-    model = make_marian(4)
+    model = make_wrapped_marian(4)
     sources = random_sources(12, seed=14)
     K = 2
     s = base_settings(model).replace(beam=K, alpha=1.0, early_stopping=False)
@@ -231,7 +231,7 @@ def test_tracking_agrees_with_the_beams_transformers_keeps():
 
 
 def test_kept_reference_never_beats_the_output():
-    model = make_marian(3)
+    model = make_wrapped_marian(3)
     sources = random_sources(12, seed=13)
     s = base_settings(model).replace(beam=4, alpha=0.7)
     refs = [h.tokens for h in beam_search(model, s.replace(beam=2), sources)]
@@ -248,7 +248,7 @@ def test_kept_reference_never_beats_the_output():
 
 
 def test_reference_longer_than_the_limit():
-    model = make_marian(0)
+    model = make_wrapped_marian(0)
     s = base_settings(model).replace(beam=2)
     got = beam_search(model, s, random_sources(1), track=[[5] * LIMIT])
     assert got[0].loss.reason == "length limit" and got[0].loss.step == LIMIT + 1
@@ -256,7 +256,7 @@ def test_reference_longer_than_the_limit():
 
 
 def test_greedy_tracking_loses_at_first_difference():
-    model = make_marian(0)
+    model = make_wrapped_marian(0)
     sources = random_sources(6, seed=10)
     s = base_settings(model).replace(beam=1)
     out = beam_search(model, s, sources)
@@ -268,7 +268,7 @@ def test_greedy_tracking_loses_at_first_difference():
 
 
 def test_smallest_width_keeping():
-    model = make_marian(4)
+    model = make_wrapped_marian(4)
     sources = random_sources(12, seed=14)
     s = base_settings(model).replace(beam=2, alpha=1.0)
     wide = beam_search(model, s.replace(beam=8), sources)

@@ -1,6 +1,6 @@
 """Exact search and wide beams against brute force over a model whose outputs can be listed.
 
-Outside sources: enumeration of every output of TableModel (tests/tiny_models.py) scored
+Outside sources: enumeration of every output of TableModel (tests/tinymodels.py) scored
 with the published objectives (power: sum / len**alpha, transformers' beam search; gnmt:
 sum / ((5 + len) / 6)**alpha, Wu et al. 2016, formula from memory), and teacher-forced
 log-probs from the transformers model's own forward pass.
@@ -20,7 +20,7 @@ from hypothesis import settings as hyp_settings
 from hypothesis import strategies as st
 
 sys.path.insert(0, str(Path(__file__).parent))
-from tiny_models import END, TableModel, make_marian, random_sources  # noqa: E402
+from tinymodels import END, TableModel, make_wrapped_marian, random_sources  # noqa: E402
 
 from triage.beam import Hypothesis, beam_search  # noqa: E402
 from triage.exact import BUDGET, PROVEN, _bound, exact_search  # noqa: E402
@@ -132,7 +132,7 @@ def test_greedy_objective_is_the_plain_sum(table):
 
 
 def test_budget_is_reported():
-    model = make_marian(4)
+    model = make_wrapped_marian(4)
     s = DecoderSettings.from_generation_config(model.model.generation_config, max_new_tokens=4,
                                                beam=2, alpha=1.0)
     src = random_sources(1, seed=14)[0]
@@ -146,7 +146,7 @@ def test_budget_is_reported():
 
 @pytest.mark.parametrize("alpha", [0.0, 0.7])
 def test_exact_on_a_transformers_model(alpha):
-    model = make_marian(4)
+    model = make_wrapped_marian(4)
     sources = random_sources(4, seed=14)
     s = DecoderSettings.from_generation_config(model.model.generation_config, max_new_tokens=3, beam=2, alpha=alpha)
     ids, mask = model._pad(sources)

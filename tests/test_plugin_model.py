@@ -134,11 +134,11 @@ def test_bad_python_specs_give_one_line(user_dir, spec, words):
 
 
 def test_other_specs_go_to_the_transformers_loader(tmp_path):
-    from tiny_models import make_marian
+    from tinymodels import make_wrapped_marian
 
     with pytest.raises(ModelError, match="not found"):
         load_model(str(tmp_path / "nowhere"))
-    tm = make_marian(0)
+    tm = make_wrapped_marian(0)
     tm.model.save_pretrained(tmp_path / "ckpt")
     tm.tokenizer.save_pretrained(tmp_path / "ckpt")
     loaded = load_model(str(tmp_path / "ckpt"))
