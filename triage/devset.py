@@ -99,18 +99,11 @@ def read_devset(
     fmt: str | None = None,
 ) -> DevSet:
     """Read the whole dev set into one DataFrame (see the module docstring for the formats)."""
-    spec = _Spec.make(path, source, references, output, columns, fmt)
-    meta: dict = {}
-    chunks = list(_chunks(spec, 50_000, meta))
+    stream = stream_devset(path, source=source, references=references, output=output, columns=columns, fmt=fmt)
+    chunks = list(stream.chunks(50_000))
     frame = pd.concat(chunks, ignore_index=True) if len(chunks) > 1 else chunks[0].reset_index(drop=True)
-    return DevSet(
-        frame=frame,
-        path=spec.display,
-        sha256=meta["sha256"],
-        fmt=spec.fmt,
-        has_output=meta["has_output"],
-        name=spec.name,
-    )
+    return DevSet(frame=frame, path=stream.path, sha256=stream.sha256, fmt=stream.fmt,
+                  has_output=bool(stream.has_output), name=stream.name)
 
 
 def iter_devset_chunks(
@@ -131,8 +124,8 @@ def iter_devset_chunks(
     """
     if chunk_rows < 1:
         raise OptionError(f"chunk_rows must be at least 1, got {chunk_rows}")
-    spec = _Spec.make(path, source, references, output, columns, fmt)
-    return _chunks(spec, chunk_rows, {})
+    stream = stream_devset(path, source=source, references=references, output=output, columns=columns, fmt=fmt)
+    return stream.chunks(chunk_rows)
 
 
 def stream_devset(
