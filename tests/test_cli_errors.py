@@ -298,3 +298,45 @@ def test_unscorable_rows_are_skipped_with_their_reason(capsys, tmp_path, short_m
     # an empty output is what a decoder that ends at once writes: scored as the end token alone
     empty = v[v["id"] == "empty-out"].iloc[0]
     assert int(empty["out_len"]) == 1
+
+
+# ----------------------------------------------------------------------------- settings the outputs cannot come from
+def _long_outputs(tmp_path, n: int, long_rows: set[int]) -> Path:
+    from tinymodels import sentences
+
+    src, ref = sentences(n, seed=71), sentences(n, seed=72, lo=2, hi=5)
+    p = tmp_path / "dev.tsv"
+    with open(p, "w", encoding="utf-8") as f:
+        f.write("id\tsource\treference\toutput\n")
+        for i in range(n):
+            out = " ".join(["platform"] * 12) if i in long_rows else "the bus"
+            f.write(f"r{i}\t{src[i]}\t{ref[i]}\t{out}\n")
+    return p
+
+
+def test_outputs_longer_than_the_length_limit_are_refused(capsys, tmp_path, tiny_model_dir):
+    # 12 words + end token is more than --max-new-tokens 6 lets the decoder write (transformers' max_new_tokens
+    # counts generated tokens, end token included): such outputs cannot come from the decoder at these settings
+    dev = _long_outputs(tmp_path, 6, long_rows={1, 2, 3, 4})
+    out = tmp_path / "o"
+    rc, stdout, err = _run(capsys, "--model", str(tiny_model_dir), "--data", str(dev), "--out", str(out),
+                           "--max-new-tokens", "6", "--no-cache")
+    assert rc == 2
+    line = _one_error_line(err)
+    assert f"{dev}:3:" in line  # the first such row is on line 3 (row r1)
+    assert "4 of 6 failed outputs cannot come from the decoder at these settings" in line
+    assert "length limit (4)" in line and "--max-new-tokens" in line
+    summary = json.loads((out / "summary.json").read_text(encoding="utf-8"))
+    assert summary["outputs_not_from_these_settings"] == {"rows": 4, "of_failed": 6, "rules": {"length limit": 4},
+                                                          "first_line": 3}
+    assert summary["recommendation"]["action"] == "inconclusive"
+    assert summary["counts"]["skipped"] == 4
+
+
+def test_a_few_outputs_the_decoder_cannot_write_give_a_warning(capsys, tmp_path, tiny_model_dir):
+    dev = _long_outputs(tmp_path, 6, long_rows={4})
+    rc, stdout, err = _run(capsys, "--model", str(tiny_model_dir), "--data", str(dev), "--out", str(tmp_path / "o"),
+                           "--max-new-tokens", "6", "--no-cache")
+    assert rc == 0
+    assert err.startswith("triage: warning: 1 failed output cannot come from the decoder at these settings "
+                          "(first on line 6)")

@@ -88,17 +88,36 @@ def bucket_table_from_counts(by_bucket: dict[str, dict[str, int]], edges: Sequen
     return pd.DataFrame(rows)
 
 
+def settings_mismatch(summary: dict[str, Any]) -> str | None:
+    """Why the given outputs cannot come from the decoder at the run's settings, when at least
+    half of the failed rows' outputs break one of its rules (longer than its length limit,
+    shorter than its minimum, a banned or repeated n-gram); None otherwise. Scores of such
+    outputs are not what the decoder maximized, so no verdict or advice rests on them."""
+    foreign = summary.get("outputs_not_from_these_settings") or {}
+    rows, failed = foreign.get("rows") or 0, foreign.get("of_failed") or 0
+    if not rows or 2 * rows < failed:
+        return None
+    rules = ", ".join(f"{rule} ({k})" for rule, k in (foreign.get("rules") or {}).items())
+    return (f"{rows} of {failed} failed outputs cannot come from the decoder at these settings "
+            f"({summary.get('objective', 'the given objective')}): its rules forbid them: {rules}")
+
+
 def recommend(counts: dict[str, int], evidence: dict[str, Any] | None = None, min_rows: int = 10) -> dict[str, Any]:
     """The recommended action and the numbers it rests on.
 
-    Without sweep evidence the rule reads the verdict mix alone; with evidence from wider
-    beams or other length penalties (the "widen", "length_penalty" and "beam_curve" sections
+    When the outputs cannot come from the decoder at the run's settings (settings_mismatch),
+    nothing is recommended. Without sweep evidence the rule reads the verdict mix alone; with
+    evidence from wider beams or other length penalties (the "widen", "length_penalty" and "beam_curve" sections
     that sweeps.py writes, see SWEEPS-SCHEMA.md) it asks whether the change would pay.
     """
     evidence = evidence or {}
     k, n = search_share(counts)
     model = counts.get("model", 0)
     failed = sum(counts.get(v, 0) for v in FAILED)
+    mismatch = settings_mismatch(evidence)
+    if mismatch:
+        return {"action": "inconclusive", "because": mismatch,
+                "missing": ["the decoder settings the outputs were decoded with"]}
     if n < min_rows:
         return {
             "action": "inconclusive",

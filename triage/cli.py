@@ -13,7 +13,7 @@ import time
 from pathlib import Path
 
 from . import __version__
-from .errors import OptionError, TriageError
+from .errors import InputError, OptionError, TriageError
 
 EPILOG = """\
 verdicts: search = the model prefers the reference (the beam missed it); model = the model prefers
@@ -199,7 +199,7 @@ def cmd_run(a: argparse.Namespace) -> int:
         options.edges = edges
     if not a.no_cache:
         options.cache_dir = Path(a.cache_dir) if a.cache_dir else out_dir / ".cache"
-    from .analysis import recommend
+    from .analysis import recommend, settings_mismatch
     from .outputs import RunWriter
     from .pipeline import model_info, run_triage
 
@@ -237,6 +237,17 @@ def cmd_run(a: argparse.Namespace) -> int:
         }
         writer.finish(result.summary, run_info)
     _print_summary(result, out_dir, run_info)
+    foreign = result.summary["outputs_not_from_these_settings"]
+    mismatch = settings_mismatch(result.summary)
+    if mismatch:
+        raise InputError(mismatch, path=dev.path, line=foreign["first_line"],
+                         hint="pass the settings the outputs were decoded with (--beam, --alpha, --penalty, "
+                         "--max-new-tokens, ...) or leave them to generation_config.json; the files were "
+                         "written with those rows skipped")
+    if foreign["rows"]:
+        k = foreign["rows"]
+        print(f"triage: warning: {k} failed output{'s' if k > 1 else ''} cannot come from the decoder at these "
+              f"settings (first on line {foreign['first_line']}); skipped, see skipped_reasons", file=sys.stderr)
     return 0
 
 

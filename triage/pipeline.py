@@ -77,6 +77,7 @@ class ChunkResult:
     outputs: list[str]
     references: list[list[str]]
     decoded: bool                       # some outputs were decoded here
+    foreign: dict[str, list[int]] = field(default_factory=dict)  # rule -> lines of outputs it forbids
 
 
 class Tally:
@@ -91,6 +92,8 @@ class Tally:
         self.at_limit = 0
         self.corpus = CorpusStats(options.metric)
         self.decoded = False
+        self.foreign: dict[str, int] = {}   # rule -> failed rows whose output it forbids
+        self.foreign_line: int | None = None  # the first such row's line
 
     def add(self, part: ChunkResult) -> None:
         v = part.verdicts
@@ -104,6 +107,9 @@ class Tally:
         self.at_limit += int(v["out_hit_limit"].sum())
         self.corpus.add(part.outputs, part.references)
         self.decoded = self.decoded or part.decoded
+        for rule, lines in part.foreign.items():
+            self.foreign[rule] = self.foreign.get(rule, 0) + len(lines)
+            self.foreign_line = min([*lines, *([self.foreign_line] if self.foreign_line else [])])
 
 
 def model_settings(model: Any, **overrides: Any) -> DecoderSettings:
@@ -258,6 +264,7 @@ def _triage_step(model, frame: pd.DataFrame, settings: DecoderSettings, options:
     rows: list[dict[str, Any]] = []
     tokens: list[dict[str, Any]] = []
     kept: dict[int, tuple[list[TargetScore], TargetScore]] = {}
+    foreign: dict[str, list[int]] = {}
     by_row = dict(zip(fail_idx, scored, strict=True))
     ids, lines = frame["id"].tolist(), frame["line"].tolist() if "line" in frame else None
     for i in range(n):
@@ -274,6 +281,8 @@ def _triage_step(model, frame: pd.DataFrame, settings: DecoderSettings, options:
             v = decide(ref_s, out_s, options.margin)
             if v.verdict == "skipped" and i in unscorable and unscorable[i][0]:
                 v.reason = f"source: {unscorable[i][0]}"
+            if out_s.scored and out_s.blocked_rule is not None:  # the decoder could not have written it
+                foreign.setdefault(out_s.blocked_rule, []).append(row["line"])
             row.update(verdict=v.verdict, reason=v.reason)
             best = v.best_ref if v.best_ref is not None else 0
             kept[offset + i] = (ref_s, out_s)
@@ -307,7 +316,7 @@ def _triage_step(model, frame: pd.DataFrame, settings: DecoderSettings, options:
         verdicts.insert(verdicts.columns.get_loc("bucket_length"), "bucket",
                         [assign_bucket(int(x), options.edges) for x in verdicts["bucket_length"]])
     progress(n - len(todo))
-    return ChunkResult(offset, verdicts, tokens, kept, outputs, references, bool(todo))
+    return ChunkResult(offset, verdicts, tokens, kept, outputs, references, bool(todo), foreign)
 
 
 def _special_ids(model) -> set[int]:
@@ -513,8 +522,13 @@ def _summary(tally: Tally, buckets, settings, options, devset, model, model_info
         # most frequent first; equal counts in order of first appearance
         "skipped_reasons": dict(sorted(tally.skipped.items(), key=lambda kv: -kv[1])),
         "outputs_at_length_limit": tally.at_limit,
+        # failed rows whose output a rule of these settings forbids: the decoder cannot have written them
+        "outputs_not_from_these_settings": {
+            "rows": sum(tally.foreign.values()), "of_failed": failed, "rules": dict(sorted(tally.foreign.items())),
+            "first_line": tally.foreign_line,
+        },
     }
-    summary["recommendation"] = recommend(counts)
+    summary["recommendation"] = recommend(counts, summary)
     return summary
 
 
