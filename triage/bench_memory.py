@@ -4,8 +4,9 @@ Writes, under a temporary folder, dev sets of N and 10*N rows made from the rows
 sample_data/devset.tsv (same share of failed rows), and measures, side by side in one
 invocation, the peak resident set of:
 
-- streamed: ``python -m triage run --model sample_data/model --data X --out Y --quiet --threads 1``
-  (no sweep and no --where-lost/--exact, so the CLI may read, score and write step by step);
+- streamed: ``python -m triage run --model sample_data/model --data X --out Y --quiet --threads 1
+  --page-rows 20`` (no sweep and no --where-lost/--exact, so the CLI reads, scores and writes step
+  by step);
 - in memory: a child that calls triage.read_devset, triage.run_triage (keep=True, every row
   kept) and triage.write_run on the same file, the same step size and the same score cache.
 
@@ -84,6 +85,9 @@ def measure(cmd: list[str], log_path: Path, timeout: float = 900) -> dict[str, A
     return {"seconds": time.perf_counter() - t0, "peak_mb": peak, "ru_maxrss_mb": usage.ru_maxrss / 1024}
 
 
+PAGE_ROWS = 20  # failed rows per verdict in report.html: small, so the page is the same size at N and 10*N
+
+
 def _in_memory_worker(model_dir: str, data: str, out: str, chunk_rows: int) -> None:
     import torch
 
@@ -95,13 +99,14 @@ def _in_memory_worker(model_dir: str, data: str, out: str, chunk_rows: int) -> N
     dev = triage.read_devset(data)
     options = TriageOptions(progress=False, chunk_rows=chunk_rows, cache_dir=str(Path(out) / ".cache"))
     result = triage.run_triage(model, dev, options=options, model_info=model_info(model, model_dir))
-    triage.write_run(result, out, {"command": "bench_memory in-memory baseline"})
+    triage.write_run(result, out, {"command": "bench_memory in-memory baseline"}, page_rows=PAGE_ROWS)
 
 
 def _command(mode: str, data: Path, out: Path, chunk_rows: int) -> list[str]:
     if mode == "streamed":
         return [sys.executable, "-m", "triage", "run", "--model", str(SAMPLE_MODEL), "--data", str(data),
-                "--out", str(out), "--quiet", "--threads", "1", "--chunk-rows", str(chunk_rows)]
+                "--out", str(out), "--quiet", "--threads", "1", "--chunk-rows", str(chunk_rows),
+                "--page-rows", str(PAGE_ROWS)]
     return [sys.executable, "-m", "triage.bench_memory", "--in-memory-worker", str(SAMPLE_MODEL), str(data),
             str(out), str(chunk_rows)]
 
@@ -150,16 +155,10 @@ def run(n: int = 2000, chunk_rows: int = 1000, repeat: int = 1, log=print) -> di
     for mode, x in per_mode.items():
         log(f"{mode:<9}: peak({sizes[1]})/peak({sizes[0]}) = {x['peak_ratio']:.2f}x, "
             f"{x['mb_per_1000_rows']:+.1f} MB per 1,000 extra rows")
-    from . import report
-
-    cap = getattr(report, "PAGE_ROWS_PER_VERDICT", None)
-    page = {rows: sum(min(v, cap) for k, v in r["counts"].items() if k != "correct")
-            for r in runs for rows in sizes if cap and r["rows"] == rows}
-    if page:  # rows the page holds grow until every verdict reaches the cap, then stay
-        log(f"note: report.html keeps up to {cap:,} failed rows per verdict with their token records, "
-            f"in both modes: {page[sizes[0]]:,} rows at {sizes[0]:,} rows, {page[sizes[1]]:,} at {sizes[1]:,}")
+    log(f"note: report.html lists {PAGE_ROWS} failed rows per verdict in both modes (--page-rows), so the page "
+        f"weighs the same at both sizes; at the default of 1,000 it grows until each verdict has 1,000 rows")
     return {"sizes": list(sizes), "chunk_rows": chunk_rows, "threads": 1, "rounds": repeat,
-            "cache": "on, never hits (every row unique)", "page_rows": {str(k): v for k, v in page.items()},
+            "cache": "on, never hits (every row unique)", "page_rows_per_verdict": PAGE_ROWS,
             "table": table, "per_mode": per_mode, "runs": runs}
 
 

@@ -113,6 +113,9 @@ def build_parser() -> argparse.ArgumentParser:
     g.add_argument("--chunk-rows", type=int, default=1000, metavar="N",
                    help="dev-set rows per step: decoded, scored, cached and written together (default 1000); "
                    "memory grows with this, not with the dev set")
+    g.add_argument("--page-rows", type=int, default=None, metavar="N",
+                   help="failed rows of each verdict listed in report.html (default 1000; every row is "
+                   "in verdicts.csv)")
     g.add_argument("--no-cache", action="store_true", help="do not read or write the score cache")
     g.add_argument("--cache-dir", metavar="DIR", help="score cache folder (default <out>/.cache)")
     g.add_argument("--quiet", action="store_true", help="no progress bars")
@@ -120,6 +123,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     rep = sub.add_parser("report", help="re-render report.html from a run directory (no model needed)")
     rep.add_argument("run_dir", metavar="RUN_DIR")
+    rep.add_argument("--page-rows", type=int, default=None, metavar="N",
+                     help="failed rows of each verdict listed in the page (default 1000)")
     rep.add_argument("--debug", action="store_true", help="show tracebacks")
 
     b = sub.add_parser("bench", help="benchmark scoring against a naive baseline and generate", add_help=False)
@@ -156,6 +161,8 @@ def cmd_run(a: argparse.Namespace) -> int:
         raise OptionError(str(exc)) from None
     if a.chunk_rows < 1:
         raise OptionError(f"--chunk-rows must be at least 1, got {a.chunk_rows}")
+    if a.page_rows is not None and a.page_rows < 1:
+        raise OptionError(f"--page-rows must be at least 1, got {a.page_rows}")
     if a.beam is not None and a.beam < 1:
         raise OptionError(f"--beam must be at least 1, got {a.beam}")
 
@@ -206,7 +213,7 @@ def cmd_run(a: argparse.Namespace) -> int:
     info = model_info(model, a.model)
     plan = dict(widen=widths, beam_curve_max=a.beam_curve, alphas=alphas, redecode_alpha=redecode,
                 max_rows=a.max_rows, seed=a.seed)
-    with RunWriter(out_dir) as writer:
+    with RunWriter(out_dir, a.page_rows) as writer:
         if in_memory:
             result = run_triage(model, dev, settings, options, model_info=info)
             if widths or a.beam_curve or redecode:
@@ -274,7 +281,9 @@ def cmd_report(a: argparse.Namespace) -> int:
     run_dir = Path(a.run_dir)
     if not (run_dir / "summary.json").is_file() or not (run_dir / "verdicts.csv").is_file():
         raise TriageError("not a run directory (needs summary.json and verdicts.csv)", path=str(run_dir))
-    out = rerender(run_dir)
+    if a.page_rows is not None and a.page_rows < 1:
+        raise OptionError(f"--page-rows must be at least 1, got {a.page_rows}")
+    out = rerender(run_dir, a.page_rows)
     print(f"wrote {out}")
     return 0
 

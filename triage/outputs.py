@@ -91,12 +91,12 @@ class RunWriter:
             writer.finish(result.summary, run_info)
     """
 
-    def __init__(self, out_dir: str | os.PathLike):
+    def __init__(self, out_dir: str | os.PathLike, page_rows: int | None = None):
         from .report import PageRows
 
         self.out = Path(out_dir)
         self.out.mkdir(parents=True, exist_ok=True)
-        self.page = PageRows()
+        self.page = PageRows(page_rows)  # failed rows per verdict the page lists (None: the default)
         self._files: dict[str, tuple[str, Any]] = {}  # final name -> (temporary path, open handle)
         self._header = True
 
@@ -150,8 +150,9 @@ class RunWriter:
         self.abort()  # after finish() there is nothing left to remove
 
 
-def write_run(result, out_dir: str | os.PathLike, run_info: dict[str, Any] | None = None) -> Path:
+def write_run(result, out_dir: str | os.PathLike, run_info: dict[str, Any] | None = None,
+              page_rows: int | None = None) -> Path:
     """Write the run's files under out_dir (created if needed) and return the folder."""
-    with RunWriter(out_dir) as writer:
+    with RunWriter(out_dir, page_rows) as writer:
         writer.add(result.verdicts, result.tokens)
         return writer.finish(result.summary, run_info)

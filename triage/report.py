@@ -624,13 +624,13 @@ def load_run(run_dir: str | Path) -> tuple[dict[str, Any], pd.DataFrame, list[di
     return summary, verdicts, list(_token_records(run_dir)), run_info
 
 
-def rerender(run_dir: str | Path) -> Path:
+def rerender(run_dir: str | Path, page_rows: int | None = None) -> Path:
     """Re-render report.html from the run directory alone, reading its rows in parts."""
     from .outputs import atomic_write
 
     run_dir = Path(run_dir)
     summary, run_info = _json_files(run_dir)
-    page = PageRows()
+    page = PageRows(page_rows)
     for part in _verdict_parts(run_dir):
         page.add_rows(part)
     for rec in _token_records(run_dir):
