@@ -109,7 +109,8 @@ class Tally:
         self.decoded = self.decoded or part.decoded
         for rule, lines in part.foreign.items():
             self.foreign[rule] = self.foreign.get(rule, 0) + len(lines)
-            self.foreign_line = min([*lines, *([self.foreign_line] if self.foreign_line else [])])
+        if part.foreign and self.foreign_line is None:  # steps come in input order: the first step's smallest
+            self.foreign_line = min(min(lines) for lines in part.foreign.values())
 
 
 def model_settings(model: Any, **overrides: Any) -> DecoderSettings:
@@ -201,10 +202,11 @@ def run_triage(
             cache.close()
     buckets = bucket_table_from_counts(tally.by_bucket, options.edges) if tally.rows else pd.DataFrame()
     summary = _summary(tally, buckets, settings, options, devset, model, model_info)
-    verdicts = (pd.concat(parts, ignore_index=True) if len(parts) > 1 else parts[0] if parts
-                else pd.DataFrame()) if keep else None
+    verdicts = None
+    if keep:
+        verdicts = pd.concat(parts, ignore_index=True) if len(parts) > 1 else parts[0] if parts else pd.DataFrame()
     stats = {"hits": cache.hits, "misses": cache.misses} if cache is not None else None
-    return TriageResult(verdicts, buckets, summary, tokens if keep else [], settings, options, kept, stats)
+    return TriageResult(verdicts, buckets, summary, tokens, settings, options, kept, stats)
 
 
 def _triage_step(model, frame: pd.DataFrame, settings: DecoderSettings, options: TriageOptions, offset: int,
