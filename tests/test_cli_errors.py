@@ -340,3 +340,12 @@ def test_a_few_outputs_the_decoder_cannot_write_give_a_warning(capsys, tmp_path,
     assert rc == 0
     assert err.startswith("triage: warning: 1 failed output cannot come from the decoder at these settings "
                           "(first on line 6)")
+
+
+def test_output_folder_that_cannot_be_made(capsys, tmp_path, good_tsv, tiny_model_dir):
+    blocker = tmp_path / "a-file"
+    blocker.write_text("not a folder\n", encoding="utf-8")
+    rc, _, err = _run(capsys, "--model", str(tiny_model_dir), "--data", str(good_tsv), "--out", str(blocker / "run"))
+    assert rc == 2
+    line = _one_error_line(err)
+    assert str(blocker / "run") in line and "Not a directory" in line

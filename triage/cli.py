@@ -18,8 +18,8 @@ from .errors import InputError, OptionError, TriageError
 EPILOG = """\
 verdicts: search = the model prefers the reference (the beam missed it); model = the model prefers
 its wrong output; tie = within --margin; blocked = a decoding rule forbids the reference;
-skipped = the row cannot be scored (reason given). Exit codes: 0 done, 2 bad input or options,
-130 interrupted (previous outputs left intact)."""
+skipped = the row cannot be scored (reason given). Exit codes: 0 done, 2 bad input or options (or an
+output folder that cannot be written, or too little memory), 130 interrupted (previous outputs left intact)."""
 
 
 def _bool_or_never(text: str):
@@ -317,6 +317,20 @@ def main(argv: list[str] | None = None) -> int:
         return 130
     except BrokenPipeError:
         os._exit(1)
+    except OSError as exc:  # an output folder that cannot be written, a full disk
+        if debug:
+            raise
+        where = f"{exc.filename}: " if exc.filename else ""
+        print(f"triage: error: {where}{exc.strerror or exc} (check the --out folder and the free space)",
+              file=sys.stderr)
+        return 2
+    except MemoryError:
+        if debug:
+            raise
+        print("triage: error: out of memory; a run without --widen, --beam-curve, --redecode-alpha, --where-lost "
+              "and --exact streams the dev set (memory follows --chunk-rows); those options need it whole",
+              file=sys.stderr)
+        return 2
     return 2
 
 
