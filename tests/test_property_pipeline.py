@@ -51,10 +51,13 @@ def _read_verdicts(path: Path) -> list[dict[str, str]]:
 
 @settings(max_examples=12, deadline=None, derandomize=True,
           suppress_health_check=[HealthCheck.too_slow, HealthCheck.function_scoped_fixture])
-@given(rows=devsets())
-@example(rows=[("0", "the", "the \r", "")])  # a bare carriage return once split verdicts.csv rows
-@example(rows=[("a", "<script>alert(1)</script>", "the bus", "the </script> train"), ("b", "one", "x\ty", '"q"')])
-def test_every_row_once_in_order(rows, tiny_model_dir, capsys):
+@given(rows=devsets(), step=st.integers(1, 4), page_rows=st.sampled_from([1, 1000]))
+@example(rows=[("0", "the", "the \r", "")], step=1, page_rows=1000)  # a bare carriage return once split verdicts.csv rows
+@example(rows=[("a", "<script>alert(1)</script>", "the bus", "the </script> train"), ("b", "one", "x\ty", '"q"')],
+         step=1, page_rows=1)
+@example(rows=[("x", "one two", "the bus", " ".join(["the train"] * 20)), ("y", "three", "a bus", "a")],
+         step=2, page_rows=1000)
+def test_every_row_once_in_order(rows, step, page_rows, tiny_model_dir, capsys):
     with tempfile.TemporaryDirectory() as tmp:
         dev = Path(tmp) / "dev.csv"
         with open(dev, "w", encoding="utf-8", newline="") as f:
@@ -62,10 +65,13 @@ def test_every_row_once_in_order(rows, tiny_model_dir, capsys):
             w.writerow(["id", "source", "reference", "output"])
             w.writerows(rows)
         out = Path(tmp) / "out"
+        # rows stream through in steps of `step` rows; the page lists `page_rows` failed rows per verdict
         rc = main(["run", "--model", str(tiny_model_dir), "--data", str(dev), "--out", str(out), "--quiet",
-                   "--no-cache"])
+                   "--no-cache", "--chunk-rows", str(step), "--page-rows", str(page_rows)])
         err = capsys.readouterr().err
-        assert rc == 0, err
+        # exit 2 with the files written: half or more of the failed outputs are longer than the tiny model's
+        # length limit (16 tokens), so they cannot come from its decoder
+        assert rc == 0 or (rc == 2 and "cannot come from the decoder at these settings" in err), err
         got = _read_verdicts(out / "verdicts.csv")
         assert [r["id"] for r in got] == [r[0] for r in rows]
         assert [r["source"] for r in got] == [r[1] for r in rows]
