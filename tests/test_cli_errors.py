@@ -348,4 +348,20 @@ def test_output_folder_that_cannot_be_made(capsys, tmp_path, good_tsv, tiny_mode
     rc, _, err = _run(capsys, "--model", str(tiny_model_dir), "--data", str(good_tsv), "--out", str(blocker / "run"))
     assert rc == 2
     line = _one_error_line(err)
-    assert str(blocker / "run") in line and "Not a directory" in line
+    assert str(blocker / "run") in line and f"cannot make the folder, {blocker} is a file" in line
+
+
+def test_tokenizer_that_needs_no_files_still_loads(tmp_path):
+    # transformers builds a byte-level tokenizer (ByT5Tokenizer) from config.json alone: no tokenizer file is
+    # needed, so the "no tokenizer files" message must only explain a tokenizer that failed to load
+    from transformers import T5Config, T5ForConditionalGeneration
+
+    from triage.plugins import load_model
+
+    torch.manual_seed(0)
+    cfg = T5Config(vocab_size=384, d_model=16, d_ff=32, num_layers=1, num_heads=2, d_kv=8, decoder_start_token_id=0,
+                   pad_token_id=0, eos_token_id=1, tokenizer_class="ByT5Tokenizer")
+    T5ForConditionalGeneration(cfg).save_pretrained(tmp_path / "byt5")
+    model = load_model(str(tmp_path / "byt5"))
+    # ByT5 maps each UTF-8 byte b to id b + 3 (3 special tokens first), the end token is appended by the scorer
+    assert model.tokenize_targets(["abc"]) == [[ord("a") + 3, ord("b") + 3, ord("c") + 3]]

@@ -113,3 +113,34 @@ def test_sigint_while_scoring_then_rerun_from_cache(tmp_path, capsys, tiny_model
     for name in DETERMINISTIC:
         assert (out / name).read_bytes() == (clean / name).read_bytes(), name
     assert not [p for p in out.iterdir() if p.name.endswith(".tmp")]
+
+
+def test_sigterm_while_scoring_stops_like_ctrl_c(tmp_path, tiny_model_dir):
+    # a timeout, a closed terminal or a cancelled job sends SIGTERM or SIGHUP: the run must clean up as on
+    # Ctrl-C (exit 128 + 15 by the shell's convention), not leave its half-written files in the folder
+    out = tmp_path / "out"
+    out.mkdir()
+    (out / "verdicts.csv").write_text("the previous run's verdicts\n", encoding="utf-8")
+    big = _write_devset(tmp_path / "big.tsv", N_ROWS, seed=3)
+    args = ["run", "--model", str(tiny_model_dir), "--data", str(big), "--out", str(out), "--quiet",
+            "--token-budget", "32", "--chunk-rows", "10", "--threads", "1"]
+    env = dict(os.environ, PYTHONPATH=str(ROOT))
+    proc = subprocess.Popen([sys.executable, "-m", "triage", *args], cwd=tmp_path, env=env,
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    db = out / ".cache" / "scores.sqlite"
+    try:
+        deadline = time.monotonic() + 120
+        while _cached_rows(db) == 0:  # the first steps are written to the temporary files by now
+            assert proc.poll() is None, proc.communicate()
+            assert time.monotonic() < deadline, "scoring never started"
+            time.sleep(0.05)
+        proc.send_signal(signal.SIGTERM)
+        _, stderr = proc.communicate(timeout=60)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.communicate()
+    assert proc.returncode == 128 + signal.SIGTERM, stderr
+    assert "Traceback" not in stderr and "triage: interrupted after scoring" in stderr
+    assert sorted(p.name for p in out.iterdir()) == [".cache", "verdicts.csv"]  # no temporary file left
+    assert (out / "verdicts.csv").read_text(encoding="utf-8") == "the previous run's verdicts\n"

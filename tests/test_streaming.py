@@ -145,11 +145,12 @@ def test_large_run_page_keeps_first_rows_per_verdict(tmp_path, tiny_model_dir, c
     # the margin histogram still counts every compared row
     compared = failed["verdict"].isin(["search", "model", "tie"]).sum()
     assert f"for the {compared} failed rows that were compared" in html
-    # re-rendering from the run folder (read in parts) gives the same page
-    assert main(["report", str(out), "--page-rows", "3"]) == 0
+    # re-rendering from the run folder (read in parts) gives the same page: run.json says how many rows it listed
+    assert json.loads((out / "run.json").read_text(encoding="utf-8"))["page_rows"] == 3
+    assert main(["report", str(out)]) == 0
     assert (out / "report.html").read_text(encoding="utf-8") == html
-    # the default lists every failed row of a run this small
-    report.rerender(out)
+    # asked for more, it lists every failed row of a run this small
+    report.rerender(out, page_rows=1000)
     assert "hold every row" not in (out / "report.html").read_text(encoding="utf-8")
 
 
@@ -165,6 +166,33 @@ def test_failed_run_leaves_previous_files_and_no_temporary_file(tmp_path):
             writer.add(frame, [])
             raise InputError("a bad row far into the file", path="dev.tsv", line=10_000)
     assert {p.name: p.read_bytes() for p in out.iterdir()} == before
+
+
+def test_temporary_files_of_a_killed_run_are_removed_by_the_next(tmp_path, tiny_model_dir, capsys):
+    dev = _devset(tmp_path / "dev.csv", n=8)
+    out = tmp_path / "out"
+    out.mkdir()
+    stale = [out / ".verdicts.csv.k1ll3d.tmp", out / ".tokens.jsonl.k1ll3d.tmp"]
+    for p in stale:
+        p.write_text("half a run\n", encoding="utf-8")
+    (out / ".notes.tmp").write_text("not ours\n", encoding="utf-8")
+    assert main(["run", "--model", str(tiny_model_dir), "--data", str(dev), "--out", str(out), "--quiet",
+                 "--no-cache"]) == 0
+    capsys.readouterr()
+    assert not any(p.exists() for p in stale)
+    assert (out / ".notes.tmp").exists()  # only the run's own temporary names are swept
+
+
+def test_a_frame_with_any_column_names_runs(tiny_model_dir):
+    # a user's DataFrame may carry columns of its own (here one named like a method of the stream reader)
+    from triage.pipeline import TriageOptions, run_triage
+    from triage.plugins import load_model
+
+    frame = pd.DataFrame({"id": [7, 8], "source": ["one two", "the bus"], "references": [["one two"], ["the train"]],
+                          "output": ["one two", "the bus"], "chunks": ["x", "y"]})
+    result = run_triage(load_model(str(tiny_model_dir)), frame, options=TriageOptions(progress=False, chunk_rows=1))
+    assert result.verdicts["id"].tolist() == [7, 8] and result.verdicts["line"].tolist() == [1, 2]
+    assert result.verdicts["verdict"].iat[0] == "correct" and result.verdicts["verdict"].iat[1] != "correct"
 
 
 def test_file_changed_between_passes_is_refused(tmp_path):

@@ -8,7 +8,9 @@ from __future__ import annotations
 
 import argparse
 import os
+import signal
 import sys
+import threading
 import time
 from pathlib import Path
 
@@ -124,7 +126,7 @@ def build_parser() -> argparse.ArgumentParser:
     rep = sub.add_parser("report", help="re-render report.html from a run directory (no model needed)")
     rep.add_argument("run_dir", metavar="RUN_DIR")
     rep.add_argument("--page-rows", type=int, default=None, metavar="N",
-                     help="failed rows of each verdict listed in the page (default 1000)")
+                     help="failed rows of each verdict listed in the page (default: as the run did, in run.json)")
     rep.add_argument("--debug", action="store_true", help="show tracebacks")
 
     b = sub.add_parser("bench", help="benchmark scoring against a naive baseline and generate", add_help=False)
@@ -145,6 +147,17 @@ def _columns(pairs: list[str]) -> dict[str, str]:
     return out
 
 
+def _check_out_dir(out_dir: Path) -> None:
+    """Refuse an output folder that cannot be made or written, without making it yet."""
+    there = out_dir
+    while not there.exists() and there != there.parent:
+        there = there.parent
+    if not there.is_dir():
+        raise OptionError(f"--out {out_dir}: cannot make the folder, {there} is a file")
+    if not os.access(there, os.W_OK | os.X_OK):
+        raise OptionError(f"--out {out_dir}: no permission to write in {there}")
+
+
 def cmd_run(a: argparse.Namespace) -> int:
     from .analysis import parse_edges
     from .pipeline import DEFAULT_MARGIN, TriageOptions
@@ -163,6 +176,8 @@ def cmd_run(a: argparse.Namespace) -> int:
         raise OptionError(f"--chunk-rows must be at least 1, got {a.chunk_rows}")
     if a.page_rows is not None and a.page_rows < 1:
         raise OptionError(f"--page-rows must be at least 1, got {a.page_rows}")
+    if a.max_rows is not None and a.max_rows < 1:
+        raise OptionError(f"--max-rows must be at least 1, got {a.max_rows}")
     if a.beam is not None and a.beam < 1:
         raise OptionError(f"--beam must be at least 1, got {a.beam}")
 
@@ -176,6 +191,7 @@ def cmd_run(a: argparse.Namespace) -> int:
                  columns=_columns(a.column) or None, fmt=a.format)
     dev = read_devset(a.data, **where) if in_memory else stream_devset(a.data, **where).check()
     out_dir = Path(a.out) if a.out else Path("reports") / dev.name
+    _check_out_dir(out_dir)  # a folder that cannot be made fails now, not after scoring
 
     if a.threads:
         import torch
@@ -241,6 +257,7 @@ def cmd_run(a: argparse.Namespace) -> int:
             "elapsed_s": round(time.perf_counter() - t0, 2),
             "command": "triage " + " ".join(sys.argv[1:]),
             "cache": result.cache,
+            "page_rows": writer.page.per_verdict,  # triage report lists as many unless told otherwise
         }
         writer.finish(result.summary, run_info)
     _print_summary(result, out_dir, run_info)
@@ -288,7 +305,29 @@ def cmd_report(a: argparse.Namespace) -> int:
     return 0
 
 
+_STOP_SIGNAL = {"signum": signal.SIGINT}
+
+
+def _stop(signum, frame) -> None:
+    """SIGTERM and SIGHUP (a timeout, a closed terminal, a cancelled job) stop a run the way Ctrl-C
+    does: the temporary files go, the previous outputs stay, the cache keeps what was scored."""
+    _STOP_SIGNAL["signum"] = signum
+    raise KeyboardInterrupt
+
+
 def main(argv: list[str] | None = None) -> int:
+    _STOP_SIGNAL["signum"] = signal.SIGINT
+    handlers = {}
+    if threading.current_thread() is threading.main_thread():
+        handlers = {sig: signal.signal(sig, _stop) for sig in (signal.SIGTERM, signal.SIGHUP)}
+    try:
+        return _main(argv)
+    finally:
+        for sig, old in handlers.items():
+            signal.signal(sig, old)
+
+
+def _main(argv: list[str] | None) -> int:
     argv = list(sys.argv[1:] if argv is None else argv)
     if argv[:1] == ["bench"]:
         from .bench import main as bench_main
@@ -314,7 +353,7 @@ def main(argv: list[str] | None = None) -> int:
         what = str(exc) if str(exc).startswith("interrupted") else "interrupted"
         print(f"triage: {what}; the previous outputs are left as they were; "
               "a rerun takes the scored rows from the cache", file=sys.stderr)
-        return 130
+        return 128 + int(_STOP_SIGNAL["signum"])  # 130 for Ctrl-C, 143 for SIGTERM, 129 for SIGHUP
     except BrokenPipeError:
         os._exit(1)
     except OSError as exc:  # an output folder that cannot be written, a full disk

@@ -118,7 +118,7 @@ def iter_devset_chunks(
 ) -> Iterator[pd.DataFrame]:
     """Yield the dev set as DataFrames of at most ``chunk_rows`` rows (same columns as DevSet.frame).
 
-    Memory stays bounded by the chunk size (plus one id per row, for the duplicate check).
+    Memory stays bounded by the chunk size (plus each row's id and line, for the duplicate check).
     Errors are raised when reached; for TSV files the layout is checked in a first pass, so
     layout errors come before the first chunk.
     """
@@ -148,8 +148,8 @@ class DevSetStream:
 
     ``check()`` reads it through once: every error the file holds is raised before any work is
     done on it, and ``rows``, ``sha256`` and ``has_output`` are known afterwards (they are also
-    filled in whenever ``chunks`` reaches the end). Memory while reading: one chunk, plus one id
-    per row for the duplicate-id check.
+    filled in whenever ``chunks`` reaches the end). Memory while reading: one chunk, plus each
+    row's id and line for the duplicate-id check (when the file has an id column).
     """
 
     spec: _Spec

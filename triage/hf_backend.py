@@ -34,7 +34,8 @@ FINGERPRINT_FILES = (
 )
 
 
-# a tokenizer saved with save_pretrained leaves at least one of these (fast, BPE, SentencePiece, WordPiece)
+# a tokenizer saved with save_pretrained leaves at least one of these (fast, BPE, SentencePiece, WordPiece);
+# a few (byte-level ones) need none, so their absence only explains a tokenizer that failed to load
 TOKENIZER_FILES = ("tokenizer.json", "tokenizer_config.json", "vocab.json", "source.spm", "spiece.model",
                    "sentencepiece.bpe.model", "vocab.txt")
 
@@ -378,14 +379,15 @@ def load_transformers_model(name_or_path: str, *, device: str = "cpu", allow_pic
         raise ModelError(f"not an encoder-decoder model (model_type {config.model_type!r})", path=str(model_dir),
                          hint="triage scores sequence-to-sequence checkpoints loadable with AutoModelForSeq2SeqLM")
     _check_weights(model_dir, allow_pickle)
-    if not any((model_dir / f).is_file() for f in TOKENIZER_FILES):
-        raise ModelError("no tokenizer files in the model directory (none of "
-                         + ", ".join(TOKENIZER_FILES) + ")", path=str(model_dir),
-                         hint="save the tokenizer beside the weights with tokenizer.save_pretrained(model_dir)")
     try:
         tokenizer = AutoTokenizer.from_pretrained(model_dir, local_files_only=True, trust_remote_code=trust_remote_code)
     except Exception as exc:
-        raise ModelError(f"tokenizer missing or unreadable: {str(exc).splitlines()[0]}", path=str(model_dir),
+        if not any((model_dir / f).is_file() for f in TOKENIZER_FILES):
+            raise ModelError("no tokenizer files in the model directory (none of " + ", ".join(TOKENIZER_FILES)
+                             + ")", path=str(model_dir),
+                             hint="save the tokenizer beside the weights with tokenizer.save_pretrained(model_dir)"
+                             ) from exc
+        raise ModelError(f"tokenizer unreadable: {str(exc).splitlines()[0]}", path=str(model_dir),
                          hint="the model directory must hold the tokenizer files saved with save_pretrained") from exc
     if tokenizer is None or isinstance(tokenizer, bool):
         raise ModelError("tokenizer missing", path=str(model_dir))

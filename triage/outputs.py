@@ -95,13 +95,17 @@ class RunWriter:
         from .report import PageRows
 
         self.out = Path(out_dir)
-        self.out.mkdir(parents=True, exist_ok=True)
         self.page = PageRows(page_rows)  # failed rows per verdict the page lists (None: the default)
         self._files: dict[str, tuple[str, Any]] = {}  # final name -> (temporary path, open handle)
         self._header = True
+        if self.out.is_dir():  # temporary files of a run killed outright (SIGKILL, power loss) go now
+            for name in FILES:
+                for stale in self.out.glob(f".{name}.*.tmp"):
+                    stale.unlink()
 
     def _temp(self, name: str):
         if name not in self._files:
+            self.out.mkdir(parents=True, exist_ok=True)
             fd, tmp = tempfile.mkstemp(dir=self.out, prefix=f".{name}.", suffix=".tmp")
             self._files[name] = (tmp, os.fdopen(fd, "w", encoding="utf-8", newline=""))
         return self._files[name][1]

@@ -12,8 +12,8 @@ outputs), find the failed rows, score them (through the score cache), label ever
 summary is built from running totals (a Tally), never from all rows at once. So a dev set of
 any size can stream through: ``run_triage(model, stream_devset(path), keep=False,
 on_step=writer.add_step)`` hands each step's rows on (outputs.RunWriter appends them to the
-run's files) and keeps none of them; memory is then bounded by the step size, plus 8 bytes per compared row
-(the score gaps, for their median and histogram).
+run's files) and keeps none of them; memory is then bounded by the step size, plus 8 bytes per
+compared row here (the score gaps, for their median) and 8 in the page (for its histogram).
 
 Writing files (verdicts.csv, summary.json, tokens.jsonl, report.html) is outputs.py's job.
 """
@@ -146,9 +146,11 @@ class ScoringInterrupted(KeyboardInterrupt):
 
 def _frames(devset: Any, chunk_rows: int) -> tuple[Iterator[pd.DataFrame], int | None]:
     """The dev set in steps of chunk_rows rows, and its row count when known beforehand."""
-    if hasattr(devset, "chunks"):  # a DevSetStream: read from disk step by step
-        return devset.chunks(chunk_rows), getattr(devset, "rows", None)
-    frame = (devset.frame if hasattr(devset, "frame") else devset).reset_index(drop=True)
+    from .devset import DevSet, DevSetStream
+
+    if isinstance(devset, DevSetStream):  # read from disk step by step
+        return devset.chunks(chunk_rows), devset.rows
+    frame = (devset.frame if isinstance(devset, DevSet) else devset).reset_index(drop=True)
     steps = (frame.iloc[k : k + chunk_rows].reset_index(drop=True) for k in range(0, len(frame), chunk_rows))
     return steps, len(frame)
 

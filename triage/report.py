@@ -625,12 +625,13 @@ def load_run(run_dir: str | Path) -> tuple[dict[str, Any], pd.DataFrame, list[di
 
 
 def rerender(run_dir: str | Path, page_rows: int | None = None) -> Path:
-    """Re-render report.html from the run directory alone, reading its rows in parts."""
+    """Re-render report.html from the run directory alone, reading its rows in parts; the page
+    lists page_rows failed rows per verdict (default: as many as the run's page, from run.json)."""
     from .outputs import atomic_write
 
     run_dir = Path(run_dir)
     summary, run_info = _json_files(run_dir)
-    page = PageRows(page_rows)
+    page = PageRows(page_rows or run_info.get("page_rows"))
     for part in _verdict_parts(run_dir):
         page.add_rows(part)
     for rec in _token_records(run_dir):
