@@ -21,7 +21,8 @@ EPILOG = """\
 verdicts: search = the model prefers the reference (the beam missed it); model = the model prefers
 its wrong output; tie = within --margin; blocked = a decoding rule forbids the reference;
 skipped = the row cannot be scored (reason given). Exit codes: 0 done, 2 bad input or options (or an
-output folder that cannot be written, or too little memory), 130 interrupted (previous outputs left intact)."""
+output folder that cannot be written, or too little memory), 130 interrupted by Ctrl-C (143 SIGTERM, 129
+SIGHUP; previous outputs left intact)."""
 
 
 def _bool_or_never(text: str):

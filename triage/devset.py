@@ -192,7 +192,7 @@ class _Spec:
     columns: dict[str, str]
     display: str
     name: str
-    tsv_dialect: str | None = None  # "raw" | "quoted" when named, else detected
+    tsv_dialect: str | None = None  # "raw" | "quoted": named, or detected on the first reading
 
     @classmethod
     def make(cls, path, source, references, output, columns, fmt) -> _Spec:
@@ -623,7 +623,9 @@ def _table_rows(spec: _Spec, chunk_rows: int, meta: dict) -> Iterator[pd.DataFra
     path = spec.files[0]
     name = str(path)
     sep = "tab" if spec.fmt == "tsv" else "comma"
-    dialect = (spec.tsv_dialect or _tsv_dialect(spec)) if spec.fmt == "tsv" else "quoted"
+    if spec.fmt == "tsv" and spec.tsv_dialect is None:
+        spec.tsv_dialect = _tsv_dialect(spec)  # once per stream: a second pass reads the file as the first did
+    dialect = spec.tsv_dialect if spec.fmt == "tsv" else "quoted"
     lines = _Lines(path)
     records = _raw_records(lines) if dialect == "raw" else _quoted_records(lines, "\t" if spec.fmt == "tsv" else ",")
     records = _layout(records, name, sep)

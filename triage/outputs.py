@@ -12,6 +12,7 @@ import csv
 import json
 import math
 import os
+import signal
 import tempfile
 from pathlib import Path
 from typing import Any
@@ -133,11 +134,17 @@ class RunWriter:
         os.umask(umask)
         for _, fh in self._files.values():
             fh.close()
-        for name in FILES:  # in this order: the report, which reads the others, lands last
-            tmp, _ = self._files[name]
-            os.chmod(tmp, 0o666 & ~umask)  # mkstemp creates 0600; give the files the usual permissions
-            os.replace(tmp, self.out / name)
-        self._files.clear()
+        # the renames go through together: a stop signal arriving meanwhile takes effect after them
+        stops = {signal.SIGINT, signal.SIGTERM, signal.SIGHUP}
+        before = signal.pthread_sigmask(signal.SIG_BLOCK, stops)
+        try:
+            for name in FILES:  # in this order: the report, which reads the others, lands last
+                tmp, _ = self._files[name]
+                os.chmod(tmp, 0o666 & ~umask)  # mkstemp creates 0600; give the files the usual permissions
+                os.replace(tmp, self.out / name)
+            self._files.clear()
+        finally:
+            signal.pthread_sigmask(signal.SIG_SETMASK, before)
         return self.out
 
     def abort(self) -> None:
