@@ -46,6 +46,26 @@ def _cached_rows(db: Path) -> int:
         return 0
 
 
+def _signal_while_scoring(args: list[str], db: Path, cwd: Path, sig: int) -> tuple[int, str]:
+    """Run `python -m triage *args`, send `sig` once the score cache holds a step; (exit code, stderr)."""
+    env = dict(os.environ, PYTHONPATH=str(ROOT))
+    proc = subprocess.Popen([sys.executable, "-m", "triage", *args], cwd=cwd, env=env,
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    try:
+        deadline = time.monotonic() + 120
+        while _cached_rows(db) == 0:  # wait until scoring has committed a step
+            assert proc.poll() is None, proc.communicate()
+            assert time.monotonic() < deadline, "scoring never started"
+            time.sleep(0.05)
+        proc.send_signal(sig)
+        _, stderr = proc.communicate(timeout=60)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.communicate()
+    return proc.returncode, stderr
+
+
 def _snapshot(folder: Path) -> dict[str, bytes]:
     return {p.name: p.read_bytes() for p in folder.iterdir() if p.is_file()}
 
@@ -64,23 +84,9 @@ def test_sigint_while_scoring_then_rerun_from_cache(tmp_path, capsys, tiny_model
     # the thread count and on which rows share a batch
     batching = ["--token-budget", "32", "--chunk-rows", "10", "--threads", "1"]
     args = ["run", "--model", str(tiny_model_dir), "--data", str(big), "--out", str(out), "--quiet", *batching]
-    env = dict(os.environ, PYTHONPATH=str(ROOT))
-    proc = subprocess.Popen([sys.executable, "-m", "triage", *args], cwd=tmp_path, env=env,
-                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     db = out / ".cache" / "scores.sqlite"
-    try:
-        deadline = time.monotonic() + 120
-        while _cached_rows(db) == 0:  # wait until scoring has committed a chunk
-            assert proc.poll() is None, proc.communicate()
-            assert time.monotonic() < deadline, "scoring never started"
-            time.sleep(0.05)
-        proc.send_signal(signal.SIGINT)
-        stdout, stderr = proc.communicate(timeout=60)
-    finally:
-        if proc.poll() is None:
-            proc.kill()
-            proc.communicate()
-    assert proc.returncode == 130, stderr
+    returncode, stderr = _signal_while_scoring(args, db, tmp_path, signal.SIGINT)
+    assert returncode == 130, stderr
     assert "Traceback" not in stderr
     msg = [line for line in stderr.splitlines() if line.startswith("triage: interrupted")]
     assert len(msg) == 1, stderr
@@ -124,23 +130,9 @@ def test_sigterm_while_scoring_stops_like_ctrl_c(tmp_path, tiny_model_dir):
     big = _write_devset(tmp_path / "big.tsv", N_ROWS, seed=3)
     args = ["run", "--model", str(tiny_model_dir), "--data", str(big), "--out", str(out), "--quiet",
             "--token-budget", "32", "--chunk-rows", "10", "--threads", "1"]
-    env = dict(os.environ, PYTHONPATH=str(ROOT))
-    proc = subprocess.Popen([sys.executable, "-m", "triage", *args], cwd=tmp_path, env=env,
-                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
-    db = out / ".cache" / "scores.sqlite"
-    try:
-        deadline = time.monotonic() + 120
-        while _cached_rows(db) == 0:  # the first steps are written to the temporary files by now
-            assert proc.poll() is None, proc.communicate()
-            assert time.monotonic() < deadline, "scoring never started"
-            time.sleep(0.05)
-        proc.send_signal(signal.SIGTERM)
-        _, stderr = proc.communicate(timeout=60)
-    finally:
-        if proc.poll() is None:
-            proc.kill()
-            proc.communicate()
-    assert proc.returncode == 128 + signal.SIGTERM, stderr
+    # by the time a step is in the cache, the temporary output files hold its rows
+    returncode, stderr = _signal_while_scoring(args, out / ".cache" / "scores.sqlite", tmp_path, signal.SIGTERM)
+    assert returncode == 128 + signal.SIGTERM, stderr
     assert "Traceback" not in stderr and "triage: interrupted after scoring" in stderr
     assert sorted(p.name for p in out.iterdir()) == [".cache", "verdicts.csv"]  # no temporary file left
     assert (out / "verdicts.csv").read_text(encoding="utf-8") == "the previous run's verdicts\n"

@@ -99,10 +99,7 @@ class RunWriter:
         self.page = PageRows(page_rows)  # failed rows per verdict the page lists (None: the default)
         self._files: dict[str, tuple[str, Any]] = {}  # final name -> (temporary path, open handle)
         self._header = True
-        if self.out.is_dir():  # temporary files of a run killed outright (SIGKILL, power loss) go now
-            for name in FILES:
-                for stale in self.out.glob(f".{name}.*.tmp"):
-                    stale.unlink()
+        self._sweep()  # temporary files of a run killed outright (SIGKILL, power loss) go now
 
     def _temp(self, name: str):
         if name not in self._files:
@@ -148,11 +145,17 @@ class RunWriter:
         return self.out
 
     def abort(self) -> None:
-        for tmp, fh in self._files.values():
+        for _, fh in self._files.values():
             fh.close()
-            if os.path.exists(tmp):
-                os.unlink(tmp)
         self._files.clear()
+        self._sweep()  # by name, so a file made just as a stop signal came (not yet in _files) goes too
+
+    def _sweep(self) -> None:
+        """Remove this folder's temporary run files (only the names RunWriter and atomic_write give them)."""
+        if self.out.is_dir():
+            for name in FILES:
+                for stale in self.out.glob(f".{name}.*.tmp"):
+                    stale.unlink(missing_ok=True)
 
     def __enter__(self) -> RunWriter:
         return self
