@@ -50,7 +50,6 @@ class CorpusStats:
     def __init__(self, name: str):
         self.metric = _metric(name, sentence=False)
         self.total: list | None = None
-        self.segments = 0
         self.ref_counts: set[int] = set()  # references per segment seen (the signature's nrefs)
 
     def add(self, outputs: Sequence[str], references: Sequence[Sequence[str]]) -> None:
@@ -64,7 +63,6 @@ class CorpusStats:
         self.metric._check_corpus_score_args(list(outputs), streams)
         part = [list(x) for x in self.metric._extract_corpus_statistics(list(outputs), streams)]
         self.total = [sum(col) for col in zip(*([self.total] if self.total else []), *part, strict=True)]
-        self.segments += len(outputs)
         self.ref_counts.add(self.metric.num_refs)
 
     def score(self) -> tuple[float, str]:
@@ -72,6 +70,6 @@ class CorpusStats:
         if self.total is None:
             return math.nan, ""
         score = float(self.metric._compute_score_from_stats(list(self.total)).score)
-        self.metric.num_refs = self.ref_counts.pop() if len(self.ref_counts) == 1 else -1  # as one call sets it
-        self.ref_counts.add(self.metric.num_refs)
+        # nrefs as one call over the whole corpus sets it: the count when every part agrees, else -1 ("var")
+        self.metric.num_refs = next(iter(self.ref_counts)) if len(self.ref_counts) == 1 else -1
         return score, str(self.metric.get_signature())

@@ -40,16 +40,27 @@ def dumps(obj: Any) -> str:
     return json.dumps(_clean(obj), indent=2, ensure_ascii=False, allow_nan=False) + "\n"
 
 
+def _open_temp(folder: Path, name: str) -> tuple[str, Any]:
+    """A new temporary file beside `folder / name` (named .<name>.<random>.tmp) and its text handle."""
+    folder.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(dir=folder, prefix=f".{name}.", suffix=".tmp")
+    return tmp, os.fdopen(fd, "w", encoding="utf-8", newline="")
+
+
+def _publish(tmp: str, path: Path) -> None:
+    """Rename a closed temporary file into place, with the usual permissions (mkstemp makes it 0600)."""
+    umask = os.umask(0)
+    os.umask(umask)
+    os.chmod(tmp, 0o666 & ~umask)
+    os.replace(tmp, path)
+
+
 def atomic_write(path: Path, text: str) -> None:
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
+    tmp, fh = _open_temp(path.parent, path.name)
     try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
+        with fh:
             fh.write(text)
-        umask = os.umask(0)
-        os.umask(umask)
-        os.chmod(tmp, 0o666 & ~umask)  # mkstemp creates 0600; give the file the usual permissions
-        os.replace(tmp, path)
+        _publish(tmp, path)
     except BaseException:
         if os.path.exists(tmp):
             os.unlink(tmp)
@@ -103,9 +114,7 @@ class RunWriter:
 
     def _temp(self, name: str):
         if name not in self._files:
-            self.out.mkdir(parents=True, exist_ok=True)
-            fd, tmp = tempfile.mkstemp(dir=self.out, prefix=f".{name}.", suffix=".tmp")
-            self._files[name] = (tmp, os.fdopen(fd, "w", encoding="utf-8", newline=""))
+            self._files[name] = _open_temp(self.out, name)
         return self._files[name][1]
 
     def add(self, verdicts, tokens: list[dict[str, Any]]) -> None:
@@ -127,8 +136,6 @@ class RunWriter:
         for name, text in (("summary.json", dumps(summary)), ("run.json", dumps(run_info)),
                            ("report.html", render_page(summary, self.page, run_info))):
             self._temp(name).write(text)
-        umask = os.umask(0)
-        os.umask(umask)
         for _, fh in self._files.values():
             fh.close()
         # the renames go through together: a stop signal arriving meanwhile takes effect after them
@@ -136,9 +143,7 @@ class RunWriter:
         before = signal.pthread_sigmask(signal.SIG_BLOCK, stops)
         try:
             for name in FILES:  # in this order: the report, which reads the others, lands last
-                tmp, _ = self._files[name]
-                os.chmod(tmp, 0o666 & ~umask)  # mkstemp creates 0600; give the files the usual permissions
-                os.replace(tmp, self.out / name)
+                _publish(self._files[name][0], self.out / name)
             self._files.clear()
         finally:
             signal.pthread_sigmask(signal.SIG_SETMASK, before)
