@@ -18,13 +18,13 @@ demo: setup
 	$(BIN)/triage run --model sample_data/model --data sample_data/devset.tsv --out reports/demo
 
 lint: setup
-	$(BIN)/ruff check triage tests
+	$(BIN)/ruff check triage tests benchmarks
 
 test: lint
 	$(BIN)/python -m pytest -q
 
 bench: setup
-	$(BIN)/python -m triage.bench
+	$(BIN)/python -m benchmarks.bench
 
 clean:
 	rm -rf $(VENV) build *.egg-info

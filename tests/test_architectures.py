@@ -9,8 +9,8 @@ import pytest
 import torch
 from tinymodels import make_tokenizer, sentences
 
-from triage.hf_backend import load_transformers_model
-from triage.pipeline import TriageOptions, model_settings, run_triage
+from triage.models.transformers_backend import load_transformers_model
+from triage.run.pipeline import TriageOptions, model_settings, run_triage
 
 
 def _bart(path):

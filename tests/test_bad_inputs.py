@@ -11,7 +11,7 @@ from pathlib import Path
 
 import pytest
 
-from triage.devset import read_devset
+from triage.data.devset import read_devset
 from triage.errors import InputError
 
 HERE = Path(__file__).parent / "bad_inputs"

@@ -1,4 +1,4 @@
-"""triage.beam against transformers' own generate, and reference tracking.
+"""triage.decoding.beam against transformers' own generate, and reference tracking.
 
 Outside sources:
 - transformers 5.24 `generate` on a Marian-architecture model: its `sequences` and
@@ -20,7 +20,7 @@ from transformers import LogitsProcessor, LogitsProcessorList
 sys.path.insert(0, str(Path(__file__).parent))
 from tinymodels import END, make_wrapped_marian, random_sources  # noqa: E402
 
-from triage.beam import beam_search, smallest_width_keeping  # noqa: E402
+from triage.decoding.beam import beam_search, smallest_width_keeping  # noqa: E402
 from triage.settings import DecoderSettings  # noqa: E402
 
 torch.set_num_threads(1)  # tiny tensors: one thread is far faster on a shared 2-core machine

@@ -2,8 +2,8 @@
 
 import sys
 
-from triage.bench_memory import SAMPLE_DEVSET, measure, vmhwm_mb, write_devset
-from triage.devset import read_devset
+from benchmarks.bench_memory import SAMPLE_DEVSET, measure, vmhwm_mb, write_devset
+from triage.data.devset import read_devset
 
 
 def test_generated_devsets_have_the_rows_asked_for_with_unique_ids_and_sources(tmp_path):

@@ -199,7 +199,7 @@ def test_checkpoint_code_not_run_by_default(capsys, tmp_path, good_tsv, tiny_mod
 def test_trust_remote_code_passed_only_with_the_flag(monkeypatch, tiny_model_dir):
     import transformers
 
-    from triage.hf_backend import load_transformers_model
+    from triage.models.transformers_backend import load_transformers_model
 
     seen = []
     real = transformers.AutoConfig.from_pretrained.__func__
@@ -356,7 +356,7 @@ def test_tokenizer_that_needs_no_files_still_loads(tmp_path):
     # needed, so the "no tokenizer files" message must only explain a tokenizer that failed to load
     from transformers import T5Config, T5ForConditionalGeneration
 
-    from triage.plugins import load_model
+    from triage.models.loading import load_model
 
     torch.manual_seed(0)
     cfg = T5Config(vocab_size=384, d_model=16, d_ff=32, num_layers=1, num_heads=2, d_kv=8, decoder_start_token_id=0,

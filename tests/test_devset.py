@@ -16,7 +16,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from triage.devset import FRAME_COLUMNS, iter_devset_chunks, read_devset
+from triage.data.devset import FRAME_COLUMNS, iter_devset_chunks, read_devset
 from triage.errors import InputError, OptionError
 
 

@@ -22,8 +22,8 @@ from hypothesis import strategies as st
 sys.path.insert(0, str(Path(__file__).parent))
 from tinymodels import END, TableModel, make_wrapped_marian, random_sources  # noqa: E402
 
-from triage.beam import Hypothesis, beam_search  # noqa: E402
-from triage.exact import BUDGET, PROVEN, _bound, exact_search  # noqa: E402
+from triage.decoding.beam import Hypothesis, beam_search  # noqa: E402
+from triage.decoding.exact import BUDGET, PROVEN, _bound, exact_search  # noqa: E402
 from triage.settings import DecoderSettings  # noqa: E402
 
 torch.set_num_threads(1)

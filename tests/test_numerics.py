@@ -13,9 +13,9 @@ import pytest
 import torch
 from tinymodels import WORDS, make_marian
 
-from triage.hf_backend import TransformersModel
-from triage.pipeline import model_settings
-from triage.scoring import ScoreRequest, score_requests
+from triage.models.transformers_backend import TransformersModel
+from triage.run.pipeline import model_settings
+from triage.scoring.scorer import ScoreRequest, score_requests
 
 N_TOKENS = 500  # scored tokens: 499 words and the end token
 

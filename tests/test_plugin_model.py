@@ -16,10 +16,10 @@ import torch
 TESTS = Path(__file__).parent
 sys.path.insert(0, str(TESTS))
 
-from triage.beam import beam_search  # noqa: E402
+from triage.decoding.beam import beam_search  # noqa: E402
+from triage.decoding.exact import PROVEN, exact_search  # noqa: E402
 from triage.errors import ModelError, TriageError  # noqa: E402
-from triage.exact import PROVEN, exact_search  # noqa: E402
-from triage.plugins import load_model  # noqa: E402
+from triage.models.loading import load_model  # noqa: E402
 from triage.settings import DecoderSettings  # noqa: E402
 
 torch.set_num_threads(1)

@@ -36,10 +36,10 @@ def hostile_texts(url: str | None = None) -> list[str]:
 
 def make_run(out_dir: Path, n: int = 40, url: str | None = None, seed: int = 0) -> Path:
     """A real run (tiny random model, given outputs, no decoding) whose texts include hostile ones."""
-    from triage.devset import read_devset
-    from triage.hf_backend import TransformersModel
-    from triage.outputs import write_run
-    from triage.pipeline import TriageOptions, run_triage
+    from triage.data.devset import read_devset
+    from triage.models.transformers_backend import TransformersModel
+    from triage.run.pipeline import TriageOptions, run_triage
+    from triage.rundir.writer import write_run
 
     model, tok = make_marian(seed=seed, num_beams=4, length_penalty=1.0, max_new_tokens=40)
     tm = TransformersModel(model, tok)
@@ -283,7 +283,7 @@ def test_hostile_text_is_escaped_and_nothing_is_loaded(run_dir):
 
 def test_script_hash_follows_the_script(run_dir, monkeypatch):
     """The hash is computed from the script actually embedded, so editing the script keeps the page working."""
-    from triage import report
+    from triage.report import page as report
 
     summary, verdicts, tokens, info = report.load_run(run_dir)
     real = report._script
@@ -332,14 +332,14 @@ def test_rerender_from_run_dir_without_model(run_dir, tmp_path):
     before = (copy / "report.html").read_bytes()
     (copy / "report.html").unlink()
     code = ("import sys; sys.modules['torch'] = None; sys.modules['transformers'] = None; "
-            "from triage.report import rerender; rerender(sys.argv[1])")
+            "from triage.report.page import rerender; rerender(sys.argv[1])")
     subprocess.run([sys.executable, "-c", code, str(copy)], check=True, cwd=Path(__file__).parent.parent)
     assert (copy / "report.html").read_bytes() == before
 
 
 # ----------------------------------------------------------------------------- optional sections
 def test_sweep_sections_render_only_when_present(run_dir):
-    from triage import report
+    from triage.report import page as report
 
     summary, verdicts, tokens, info = report.load_run(run_dir)
     plain = report.render_report(summary, verdicts, tokens, info)
@@ -376,7 +376,7 @@ def test_sweep_sections_render_only_when_present(run_dir):
 
 
 def test_lost_at_columns_show_in_row_details(run_dir):
-    from triage import report
+    from triage.report import page as report
 
     summary, verdicts, tokens, info = report.load_run(run_dir)
     verdicts = verdicts.copy()
@@ -390,7 +390,7 @@ def test_lost_at_columns_show_in_row_details(run_dir):
 
 # ----------------------------------------------------------------------------- charts
 def test_histogram_bins_match_numpy():
-    from triage.charts import gap_bins
+    from triage.report.charts import gap_bins
 
     rng = np.random.default_rng(0)
     vals = list(rng.normal(-1.0, 2.0, 300))
@@ -403,7 +403,7 @@ def test_histogram_bins_match_numpy():
 
 
 def test_far_out_margins_are_named_not_drawn():
-    from triage.charts import gap_histogram, split_outliers
+    from triage.report.charts import gap_histogram, split_outliers
 
     rng = np.random.default_rng(1)
     vals = list(rng.normal(-2.0, 0.5, 200)) + [4234.2, 190.0, -9999.0]
@@ -416,7 +416,7 @@ def test_far_out_margins_are_named_not_drawn():
 
 
 def test_length_bars_are_proportional_and_labelled():
-    from triage.charts import LABELS, length_bars
+    from triage.report.charts import LABELS, length_bars
 
     svg = str(length_bars([{"range": "1-10", "rows": 8, "counts": {"search": 2, "model": 6}},
                            {"range": "<x>", "rows": 4, "counts": {"search": 4, "model": 0}}]))

@@ -114,7 +114,7 @@ def test_shipped_model_is_small():
 @pytest.fixture(scope="module")
 def sample_run():
     from triage import load_model, read_devset, run_triage
-    from triage.pipeline import TriageOptions
+    from triage.run.pipeline import TriageOptions
 
     return run_triage(load_model(str(MODEL)), read_devset(str(DEVSET)), options=TriageOptions(progress=False))
 

@@ -14,10 +14,10 @@ import pytest
 import torch
 from tinymodels import make_marian, sentences
 
-from triage.decode import decode
-from triage.hf_backend import TransformersModel
-from triage.pipeline import model_settings
-from triage.scoring import ScoreRequest, score_requests
+from triage.decoding.decode import decode
+from triage.models.transformers_backend import TransformersModel
+from triage.run.pipeline import model_settings
+from triage.scoring.scorer import ScoreRequest, score_requests
 from triage.settings import DecoderSettings
 
 

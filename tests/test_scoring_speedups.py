@@ -18,9 +18,9 @@ from hypothesis import settings as hsettings
 from hypothesis import strategies as st
 from tinymodels import make_marian
 
-from triage import scoring
-from triage.hf_backend import TransformersModel
-from triage.scoring import ScoreRequest, score_requests
+from triage.models.transformers_backend import TransformersModel
+from triage.scoring import scorer as scoring
+from triage.scoring.scorer import ScoreRequest, score_requests
 from triage.settings import DecoderSettings
 
 TOL = 1e-5
@@ -172,7 +172,7 @@ def test_head_fallback_uses_full_forward(tm):
 
 
 def test_length_groups_and_grouped_encoder(tm, monkeypatch):
-    from triage import hf_backend
+    from triage.models import transformers_backend as hf_backend
 
     lengths = [3, 40, 4, 41, 5, 39]
     groups = hf_backend.length_groups(lengths, min_tokens=10)
@@ -226,7 +226,7 @@ def test_rules_path_equals_plain_forward_with_processors(tm, monkeypatch, budget
 def test_bench_flop_count_matches_torch_counter():
     from torch.utils.flop_counter import FlopCounterMode
 
-    from triage.bench import row_flops
+    from benchmarks.bench import row_flops
 
     model, tok = make_marian(seed=1, d_model=32, layers=2)
     # eager attention runs as matmuls the counter sees (it has no rule for the CPU sdpa kernel)

@@ -23,12 +23,12 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from tinymodels import WORDS, sentences
 
-from triage import report
 from triage.cli import main
-from triage.devset import read_devset, stream_devset
+from triage.data.devset import read_devset, stream_devset
 from triage.errors import InputError
-from triage.metrics import CorpusStats
-from triage.outputs import RunWriter, write_run
+from triage.report import page as report
+from triage.run.metrics import CorpusStats
+from triage.rundir.writer import RunWriter, write_run
 
 DETERMINISTIC = ("verdicts.csv", "summary.json", "tokens.jsonl")
 
@@ -75,10 +75,10 @@ def test_summed_statistics_equal_sacrebleu_corpus_score(rows, cuts, name):
 
 # ---------------------------------------------------------------------------------------- same files
 def test_streamed_cli_run_writes_the_files_of_the_in_memory_run(tmp_path, tiny_model_dir, capsys):
-    from triage.analysis import recommend
-    from triage.pipeline import TriageOptions, model_info, run_triage
-    from triage.plugins import load_model
-    from triage.sweeps import run_sweeps
+    from triage.models.loading import load_model
+    from triage.run.analysis import recommend
+    from triage.run.pipeline import TriageOptions, model_info, run_triage
+    from triage.studies.sweeps import run_sweeps
 
     dev = _devset(tmp_path / "dev.csv")
     streamed = tmp_path / "streamed"
@@ -185,8 +185,8 @@ def test_temporary_files_of_a_killed_run_are_removed_by_the_next(tmp_path, tiny_
 
 def test_a_frame_with_any_column_names_runs(tiny_model_dir):
     # a user's DataFrame may carry columns of its own (here one named like a method of the stream reader)
-    from triage.pipeline import TriageOptions, run_triage
-    from triage.plugins import load_model
+    from triage.models.loading import load_model
+    from triage.run.pipeline import TriageOptions, run_triage
 
     frame = pd.DataFrame({"id": [7, 8], "source": ["one two", "the bus"], "references": [["one two"], ["the train"]],
                           "output": ["one two", "the bus"], "chunks": ["x", "y"]})

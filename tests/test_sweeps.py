@@ -14,12 +14,12 @@ import torch
 from sacrebleu.metrics import CHRF
 from tinymodels import make_marian, sentences
 
-from triage.analysis import recommend
-from triage.decode import decode
+from triage.decoding.decode import decode
 from triage.errors import OptionError
-from triage.hf_backend import TransformersModel
-from triage.pipeline import TriageOptions, model_settings, run_triage
-from triage.sweeps import estimate_seconds, merge_sweeps, parse_alphas, parse_widths, run_sweeps
+from triage.models.transformers_backend import TransformersModel
+from triage.run.analysis import recommend
+from triage.run.pipeline import TriageOptions, model_settings, run_triage
+from triage.studies.sweeps import estimate_seconds, merge_sweeps, parse_alphas, parse_widths, run_sweeps
 
 N = 32
 MAX_NEW = 24
@@ -190,7 +190,7 @@ def test_interrupt_keeps_finished_widths_and_estimate(tiny, widen_plant, monkeyp
     result, _, planted = widen_plant
     est = estimate_seconds(tm, result, widen=[4, 6], max_rows=5)
     assert est["seconds"] > 0 and set(est["steps"]) == {"widen"} and est["sample_rows"] == 4
-    import triage.sweeps as sw
+    import triage.studies.sweeps as sw
 
     real = sw.decode
 

@@ -19,8 +19,8 @@ import pytest
 import torch
 
 from triage.cli import main
-from triage.plugins import load_model
-from triage.scoring import ScoreRequest, score_requests
+from triage.models.loading import load_model
+from triage.scoring.scorer import ScoreRequest, score_requests
 
 TESTS = Path(__file__).resolve().parent
 EXAMPLES = TESTS.parent / "examples"

@@ -13,9 +13,9 @@ import torch
 from sacrebleu.metrics import BLEU, CHRF
 from tinymodels import make_marian, sentences
 
-from triage.analysis import assign_bucket, bucket_labels, wilson_interval
-from triage.hf_backend import TransformersModel
-from triage.pipeline import TriageOptions, model_settings, run_triage
+from triage.models.transformers_backend import TransformersModel
+from triage.run.analysis import assign_bucket, bucket_labels, wilson_interval
+from triage.run.pipeline import TriageOptions, model_settings, run_triage
 
 
 @pytest.fixture(scope="module")

@@ -110,7 +110,7 @@ def make_wrapped_marian(seed: int = 0, *, d_model: int = 32, layers: int = 1, vo
     end_bias added to the end token's logit makes some outputs end early while others run to the
     length limit. The tokenizer adds no end token (make_tokenizer with add_end=False).
     """
-    from triage.hf_backend import TransformersModel
+    from triage.models.transformers_backend import TransformersModel
 
     model = _seeded_marian(seed, vocab, d_model, layers, 64, init_std,
                            share_encoder_decoder_embeddings=False, tie_word_embeddings=False)

@@ -13,12 +13,12 @@ __version__ = "0.1.0"
 
 _LAZY = {
     "DecoderSettings": ("triage.settings", "DecoderSettings"),
-    "read_devset": ("triage.devset", "read_devset"),
-    "run_triage": ("triage.pipeline", "run_triage"),
-    "model_settings": ("triage.pipeline", "model_settings"),
-    "TriageOptions": ("triage.pipeline", "TriageOptions"),
-    "write_run": ("triage.outputs", "write_run"),
-    "load_model": ("triage.plugins", "load_model"),
+    "read_devset": ("triage.data.devset", "read_devset"),
+    "run_triage": ("triage.run.pipeline", "run_triage"),
+    "model_settings": ("triage.run.pipeline", "model_settings"),
+    "TriageOptions": ("triage.run.pipeline", "TriageOptions"),
+    "write_run": ("triage.rundir.writer", "write_run"),
+    "load_model": ("triage.models.loading", "load_model"),
 }
 
 __all__ = ["__version__", *_LAZY]

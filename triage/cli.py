@@ -1,4 +1,4 @@
-"""The command line: a thin shell over the library (triage.pipeline, triage.outputs, triage.report).
+"""The command line: a thin shell over the library (triage.run.pipeline, triage.rundir.writer, triage.report.page).
 
 torch and transformers are imported only inside the commands that need them, so
 ``triage --help`` answers at once.
@@ -14,8 +14,8 @@ import threading
 import time
 from pathlib import Path
 
-from . import __version__
-from .errors import InputError, OptionError, TriageError
+from triage import __version__
+from triage.errors import InputError, OptionError, TriageError
 
 EPILOG = """\
 verdicts: search = the model prefers the reference (the beam missed it); model = the model prefers
@@ -160,8 +160,8 @@ def _check_out_dir(out_dir: Path) -> None:
 
 
 def cmd_run(a: argparse.Namespace) -> int:
-    from .analysis import parse_edges
-    from .pipeline import DEFAULT_MARGIN, TriageOptions
+    from triage.run.analysis import parse_edges
+    from triage.run.pipeline import DEFAULT_MARGIN, TriageOptions
 
     if not a.data and not a.source:
         raise OptionError("give the dev set: --data FILE, or --source F --reference F [--output F]")
@@ -182,7 +182,7 @@ def cmd_run(a: argparse.Namespace) -> int:
     if a.beam is not None and a.beam < 1:
         raise OptionError(f"--beam must be at least 1, got {a.beam}")
 
-    from .devset import read_devset, stream_devset
+    from triage.data.devset import read_devset, stream_devset
 
     t0 = time.perf_counter()
     # decoding sweeps and search checks work on rows held in memory; otherwise the dev set streams
@@ -198,8 +198,8 @@ def cmd_run(a: argparse.Namespace) -> int:
         import torch
 
         torch.set_num_threads(a.threads)
-    from .pipeline import model_settings
-    from .plugins import load_model
+    from triage.models.loading import load_model
+    from triage.run.pipeline import model_settings
 
     model = load_model(a.model, device=a.device, allow_pickle=a.allow_pickle,
                        trust_remote_code=a.trust_remote_code)
@@ -209,7 +209,7 @@ def cmd_run(a: argparse.Namespace) -> int:
                                   source_prefix=a.prefix)
     except ValueError as exc:
         raise OptionError(str(exc)) from None
-    from .sweeps import PenaltyTally, estimate_seconds, parse_alphas, parse_widths, run_sweeps
+    from triage.studies.sweeps import PenaltyTally, estimate_seconds, parse_alphas, parse_widths, run_sweeps
 
     # sweep options are checked before anything is scored, so a typo costs no scoring time
     widths = parse_widths(a.widen, settings.beam) if a.widen else None
@@ -223,9 +223,9 @@ def cmd_run(a: argparse.Namespace) -> int:
         options.edges = edges
     if not a.no_cache:
         options.cache_dir = Path(a.cache_dir) if a.cache_dir else out_dir / ".cache"
-    from .analysis import recommend, settings_mismatch
-    from .outputs import RunWriter
-    from .pipeline import model_info, run_triage
+    from triage.run.analysis import recommend, settings_mismatch
+    from triage.run.pipeline import model_info, run_triage
+    from triage.rundir.writer import RunWriter
 
     info = model_info(model, a.model)
     plan = dict(widen=widths, beam_curve_max=a.beam_curve, alphas=alphas, redecode_alpha=redecode,
@@ -240,7 +240,7 @@ def cmd_run(a: argparse.Namespace) -> int:
             result.summary.update(run_sweeps(model, result, **plan, progress=not a.quiet, devset=dev,
                                              length_penalty=True))
             if a.where_lost or a.exact:
-                from .search_checks import run_search_checks
+                from triage.studies.search_checks import run_search_checks
 
                 run_search_checks(model, result, where_lost_rows=a.where_lost, exact=a.exact,
                                   progress=not a.quiet)
@@ -294,7 +294,7 @@ def _print_summary(result, out_dir: Path, run_info: dict) -> None:
 
 
 def cmd_report(a: argparse.Namespace) -> int:
-    from .report import rerender
+    from triage.report.page import rerender
 
     run_dir = Path(a.run_dir)
     if not (run_dir / "summary.json").is_file() or not (run_dir / "verdicts.csv").is_file():
@@ -331,7 +331,7 @@ def main(argv: list[str] | None = None) -> int:
 def _main(argv: list[str] | None) -> int:
     argv = list(sys.argv[1:] if argv is None else argv)
     if argv[:1] == ["bench"]:
-        from .bench import main as bench_main
+        from benchmarks.bench import main as bench_main
 
         return int(bench_main(argv[1:]) or 0)
     parser = build_parser()

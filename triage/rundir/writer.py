@@ -104,7 +104,7 @@ class RunWriter:
     """
 
     def __init__(self, out_dir: str | os.PathLike, page_rows: int | None = None):
-        from .report import PageRows
+        from triage.report.page import PageRows
 
         self.out = Path(out_dir)
         self.page = PageRows(page_rows)  # failed rows per verdict the page lists (None: the default)
@@ -128,7 +128,7 @@ class RunWriter:
         self.add(part.verdicts, part.tokens)
 
     def finish(self, summary: dict[str, Any], run_info: dict[str, Any] | None = None) -> Path:
-        from .report import render_page
+        from triage.report.page import render_page
 
         run_info = run_info or {}
         self._temp("verdicts.csv")

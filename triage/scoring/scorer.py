@@ -27,9 +27,9 @@ from dataclasses import dataclass, field
 
 import torch
 
-from .model_api import SequenceModel, forced_logprobs
-from .rules import apply_rules, build_processors, first_blocking_rule
-from .settings import DecoderSettings
+from triage.decoding.rules import apply_rules, build_processors, first_blocking_rule
+from triage.models.api import SequenceModel, forced_logprobs
+from triage.settings import DecoderSettings
 
 #: most log-probs the rules path holds at once (it keeps whole vocabulary vectors per position)
 RULES_LOGITS_BUDGET = 1 << 26

@@ -8,7 +8,7 @@ bound). Here it runs with triage's objective (settings.objective) and generation
 Output space: the outputs the beam decoder can return, that is every target that ends with
 an end token within ``max_new_tokens`` tokens, plus (``include_limit_hit=True``, the
 default) every target of exactly ``max_new_tokens`` tokens without an end token, which
-transformers' beam search also scores and may return (see triage.beam, point 5).
+transformers' beam search also scores and may return (see triage.decoding.beam, point 5).
 
 The bound. A prefix of t tokens with summed log-prob s can only grow into outputs of length
 L in [t+1, max_new_tokens] whose sum S is at most s (every further log-prob is <= 0). Its
@@ -42,10 +42,10 @@ from dataclasses import dataclass
 
 import torch
 
-from .beam import Hypothesis, beam_search
-from .model_api import SequenceModel
-from .rules import apply_rules, build_processors
-from .settings import DecoderSettings
+from triage.decoding.beam import Hypothesis, beam_search
+from triage.decoding.rules import apply_rules, build_processors
+from triage.models.api import SequenceModel
+from triage.settings import DecoderSettings
 
 PROVEN = "proven"
 BUDGET = "budget reached"

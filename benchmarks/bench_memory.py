@@ -1,4 +1,4 @@
-"""Peak memory of a run as the dev set grows (``python -m triage.bench_memory``).
+"""Peak memory of a run as the dev set grows (``python -m benchmarks.bench_memory``).
 
 Writes, under a temporary folder, dev sets of N and 10*N rows made from the rows of
 sample_data/devset.tsv (same share of failed rows), and measures, side by side in one
@@ -34,7 +34,7 @@ from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
 
-from .bench import SAMPLE_MODEL
+from benchmarks.bench import SAMPLE_MODEL
 
 SAMPLE_DEVSET = SAMPLE_MODEL.parent / "devset.tsv"
 MODES = ("streamed", "in memory")
@@ -93,7 +93,7 @@ def _in_memory_worker(model_dir: str, data: str, out: str, chunk_rows: int) -> N
 
     torch.set_num_threads(1)
     import triage
-    from triage.pipeline import TriageOptions, model_info
+    from triage.run.pipeline import TriageOptions, model_info
 
     model = triage.load_model(model_dir)
     dev = triage.read_devset(data)
@@ -107,7 +107,7 @@ def _command(mode: str, data: Path, out: Path, chunk_rows: int) -> list[str]:
         return [sys.executable, "-m", "triage", "run", "--model", str(SAMPLE_MODEL), "--data", str(data),
                 "--out", str(out), "--quiet", "--threads", "1", "--chunk-rows", str(chunk_rows),
                 "--page-rows", str(PAGE_ROWS)]
-    return [sys.executable, "-m", "triage.bench_memory", "--in-memory-worker", str(SAMPLE_MODEL), str(data),
+    return [sys.executable, "-m", "benchmarks.bench_memory", "--in-memory-worker", str(SAMPLE_MODEL), str(data),
             str(out), str(chunk_rows)]
 
 
@@ -163,7 +163,7 @@ def run(n: int = 2000, chunk_rows: int = 1000, repeat: int = 1, log=print) -> di
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    ap = argparse.ArgumentParser(prog="python -m triage.bench_memory",
+    ap = argparse.ArgumentParser(prog="python -m benchmarks.bench_memory",
                                  description="Peak RSS of a run at N and 10*N rows, streamed CLI beside an "
                                  "in-memory baseline, each in its own child process.")
     ap.add_argument("--quick", action="store_true", help="N = 400 and 200 rows per step")

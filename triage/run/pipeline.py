@@ -28,13 +28,19 @@ from typing import Any
 
 import pandas as pd
 
-from . import __version__
-from .analysis import DEFAULT_EDGES, assign_bucket, bucket_table_from_counts, recommend, search_share
-from .errors import OptionError
-from .metrics import CorpusStats, sentence_scores
-from .scoring import ScoreRequest, TargetScore, score_requests
-from .settings import DecoderSettings
-from .verdicts import COMPARED, FAILED, VERDICTS, decide, matches_any
+from triage import __version__
+from triage.errors import OptionError
+from triage.run.analysis import (
+    DEFAULT_EDGES,
+    assign_bucket,
+    bucket_table_from_counts,
+    recommend,
+    search_share,
+)
+from triage.run.metrics import CorpusStats, sentence_scores
+from triage.run.verdicts import COMPARED, FAILED, VERDICTS, decide, matches_any
+from triage.scoring.scorer import ScoreRequest, TargetScore, score_requests
+from triage.settings import DecoderSettings
 
 DEFAULT_MARGIN = 1e-4
 
@@ -146,7 +152,7 @@ class ScoringInterrupted(KeyboardInterrupt):
 
 def _frames(devset: Any, chunk_rows: int) -> tuple[Iterator[pd.DataFrame], int | None]:
     """The dev set in steps of chunk_rows rows, and its row count when known beforehand."""
-    from .devset import DevSet, DevSetStream
+    from triage.data.devset import DevSet, DevSetStream
 
     if isinstance(devset, DevSetStream):  # read from disk step by step
         return devset.chunks(chunk_rows), devset.rows
@@ -224,7 +230,7 @@ def _triage_step(model, frame: pd.DataFrame, settings: DecoderSettings, options:
     outputs = frame["output"].tolist() if "output" in frame else [None] * n
     todo = [i for i, o in enumerate(outputs) if o is None]
     if todo:
-        from .decode import decode
+        from triage.decoding.decode import decode
 
         dec = decode(model, settings, [src_ids[i] for i in todo], progress=progress)
         for i, d in zip(todo, dec, strict=True):
@@ -409,7 +415,7 @@ def _score_rows(model, settings, options, cache, requests, problems, committed):
 def _open_cache(model, settings: DecoderSettings, options: TriageOptions):
     if options.cache_dir is None:
         return None
-    from .cache import ScoreCache
+    from triage.scoring.cache import ScoreCache
 
     return ScoreCache(options.cache_dir, model.fingerprint(), settings.fingerprint())
 
@@ -537,7 +543,7 @@ def _summary(tally: Tally, buckets, settings, options, devset, model, model_info
 
 
 def _ci(k: int, n: int) -> tuple[float | None, float | None]:
-    from .analysis import wilson_interval
+    from triage.run.analysis import wilson_interval
 
     lo, hi = wilson_interval(k, n)
     return (None if math.isnan(lo) else lo, None if math.isnan(hi) else hi)

@@ -76,9 +76,9 @@ from typing import Any
 
 import torch
 
-from .model_api import SequenceModel
-from .rules import apply_rules, build_processors
-from .settings import DecoderSettings
+from triage.decoding.rules import apply_rules, build_processors
+from triage.models.api import SequenceModel
+from triage.settings import DecoderSettings
 
 PLACEHOLDER = -1.0e9  # transformers' "impossible" score (beams 1..K-1 at the start, masked entries)
 

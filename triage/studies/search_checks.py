@@ -13,8 +13,8 @@ from typing import Any
 
 import pandas as pd
 
-from .beam import Hypothesis, smallest_width_keeping
-from .exact import PROVEN, exact_search
+from triage.decoding.beam import Hypothesis, smallest_width_keeping
+from triage.decoding.exact import PROVEN, exact_search
 
 
 def _hypothesis(settings, out) -> Hypothesis:

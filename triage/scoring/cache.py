@@ -15,7 +15,7 @@ import math
 import sqlite3
 from pathlib import Path
 
-from .scoring import ScoreRequest, TargetScore
+from triage.scoring.scorer import ScoreRequest, TargetScore
 
 SCHEMA = "CREATE TABLE IF NOT EXISTS scores (key TEXT PRIMARY KEY, value TEXT NOT NULL)"
 

@@ -22,7 +22,7 @@ from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
 if TYPE_CHECKING:  # the report imports this module and renders without torch
-    from .scoring import TargetScore
+    from triage.scoring.scorer import TargetScore
 
 VERDICTS = ("correct", "search", "model", "tie", "blocked", "skipped")
 FAILED = ("search", "model", "tie", "blocked", "skipped")

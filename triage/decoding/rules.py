@@ -15,7 +15,7 @@ from typing import Any
 
 import torch
 
-from .settings import DecoderSettings
+from triage.settings import DecoderSettings
 
 # processor class name -> the rule's plain name (used in `blocked` reasons)
 RULE_NAMES = {

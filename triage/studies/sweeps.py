@@ -11,7 +11,7 @@ Three sweeps over a finished triage (a TriageResult), each optional:
   an alpha grid) from the recorded log-prob sums and lengths; no decoding. Optionally decode
   again at some alphas and re-triage those rows. Also a brevity check of model-side rows.
 
-    from triage.sweeps import run_sweeps, merge_sweeps
+    from triage.studies.sweeps import run_sweeps, merge_sweeps
     sweeps = run_sweeps(model, result, widen=[8, 16], beam_curve_max=8, alphas=None,
                         redecode_alpha=[0.6], max_rows=200, devset=devset)
     tables = merge_sweeps(result.summary, sweeps)   # summary keys + a new recommendation
@@ -30,13 +30,13 @@ from typing import Any
 
 import pandas as pd
 
-from .analysis import recommend, verdict_counts
-from .decode import decode
-from .errors import OptionError
-from .metrics import corpus, sentence_scores
-from .scoring import ScoreRequest, TargetScore, score_requests
-from .settings import DecoderSettings
-from .verdicts import matches_any
+from triage.decoding.decode import decode
+from triage.errors import OptionError
+from triage.run.analysis import recommend, verdict_counts
+from triage.run.metrics import corpus, sentence_scores
+from triage.run.verdicts import matches_any
+from triage.scoring.scorer import ScoreRequest, TargetScore, score_requests
+from triage.settings import DecoderSettings
 
 COMPARED = ("search", "model", "tie")
 DEFAULT_ALPHAS = (0.0, 0.2, 0.4, 0.6, 0.8, 1.0, 1.2)
@@ -403,7 +403,7 @@ def sweep_length_penalty(model, result, alphas: Sequence[float] | None, *, redec
 
 
 def _redecode(model, result, alphas, section, references, devset, max_rows, seed, progress) -> None:
-    from .pipeline import run_triage
+    from triage.run.pipeline import run_triage
 
     settings, v = result.settings, result.verdicts
     form = settings.penalty if settings.penalty != "none" else "power"

@@ -13,8 +13,8 @@ import os
 import sys
 from typing import Any
 
-from .errors import ModelError
-from .model_api import SequenceModel
+from triage.errors import ModelError
+from triage.models.api import SequenceModel
 
 PREFIX = "python:"
 REQUIRED_INTS = ("start_id", "end_id", "pad_id", "vocab_size")
@@ -94,6 +94,6 @@ def load_model(spec: str, **kw: Any) -> SequenceModel:
     """
     if spec.startswith(PREFIX):
         return load_python_model(spec)
-    from .hf_backend import load_transformers_model
+    from triage.models.transformers_backend import load_transformers_model
 
     return load_transformers_model(spec, **kw)

@@ -8,7 +8,7 @@ from typing import Any
 
 import pandas as pd
 
-from .verdicts import FAILED, VERDICTS
+from triage.run.verdicts import FAILED, VERDICTS
 
 DEFAULT_EDGES = (1, 11, 21, 31, 41)  # buckets 1-10, 11-20, 21-30, 31-40, 41+
 BUCKET_BY = ("ref-words", "source-words", "ref-tokens", "source-tokens")

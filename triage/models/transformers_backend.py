@@ -15,7 +15,7 @@ from typing import Any
 
 import torch
 
-from .errors import ModelError
+from triage.errors import ModelError
 
 WEIGHT_SAFE = (".safetensors",)
 WEIGHT_PICKLE = (".bin", ".pt", ".pth", ".ckpt", ".pkl")

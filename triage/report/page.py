@@ -19,9 +19,9 @@ from typing import Any
 import pandas as pd
 from markupsafe import Markup
 
-from . import charts
-from .settings import DecoderSettings
-from .verdicts import COMPARED
+from triage.report import charts
+from triage.run.verdicts import COMPARED
+from triage.settings import DecoderSettings
 
 VERDICT_ORDER = ("search", "model", "tie", "blocked", "skipped", "correct")
 
@@ -484,7 +484,7 @@ def _penalty(settings: DecoderSettings | None, length: Any) -> str:
 def _env():
     from jinja2 import Environment, PackageLoader, StrictUndefined, select_autoescape  # noqa: F401
 
-    env = Environment(loader=PackageLoader("triage", "templates"), autoescape=select_autoescape(default=True),
+    env = Environment(loader=PackageLoader("triage.report", "templates"), autoescape=select_autoescape(default=True),
                       trim_blocks=True, lstrip_blocks=True)
     env.filters.update(num=fmt_num, pct=fmt_pct, interval=fmt_interval, value=fmt_value)
     return env
@@ -627,7 +627,7 @@ def load_run(run_dir: str | Path) -> tuple[dict[str, Any], pd.DataFrame, list[di
 def rerender(run_dir: str | Path, page_rows: int | None = None) -> Path:
     """Re-render report.html from the run directory alone, reading its rows in parts; the page
     lists page_rows failed rows per verdict (default: as many as the run's page, from run.json)."""
-    from .outputs import atomic_write
+    from triage.rundir.writer import atomic_write
 
     run_dir = Path(run_dir)
     summary, run_info = _json_files(run_dir)

@@ -1,4 +1,4 @@
-"""Side-by-side speed check of triage's scoring on this machine (``python -m triage.bench``).
+"""Side-by-side speed check of triage's scoring on this machine (``python -m benchmarks.bench``).
 
 Builds, in memory and without download, an encoder-decoder of production translation size
 (Marian layout: 6 + 6 layers, d_model 512, 8 heads, FFN 2048, vocabulary 58,101; random
@@ -67,7 +67,7 @@ def build_model(size: dict[str, int], seed: int = 0, max_positions: int = 512):
     from tokenizers import Tokenizer, models
     from transformers import MarianConfig, MarianMTModel, PreTrainedTokenizerFast
 
-    from .hf_backend import TransformersModel
+    from triage.models.transformers_backend import TransformersModel
 
     torch.manual_seed(seed)
     cfg = MarianConfig(
@@ -110,7 +110,7 @@ def synthetic_rows(n: int, vocab: int, seed: int = 0, lo: int = 5, hi: int = 60,
 
 
 def _settings(model):
-    from .settings import DecoderSettings
+    from triage.settings import DecoderSettings
 
     return DecoderSettings(beam=4, alpha=1.0, max_new_tokens=64, eos_token_ids=(model.end_id,),
                            pad_token_id=model.pad_id, origin="bench")
@@ -118,7 +118,7 @@ def _settings(model):
 
 # ---------------------------------------------------------------------------- contenders
 def run_tool(model, settings, rows, token_budget: int = 4096):
-    from .scoring import ScoreRequest, score_requests
+    from triage.scoring.scorer import ScoreRequest, score_requests
 
     reqs = [ScoreRequest(src, [ref, out]) for src, ref, out in rows]
     t0 = time.perf_counter()
@@ -204,10 +204,10 @@ def _scale_worker(n: int, model_dir: str) -> None:
 
     import torch
 
-    from .scoring import ScoreRequest, score_requests
+    from triage.scoring.scorer import ScoreRequest, score_requests
 
     if model_dir:
-        from .hf_backend import load_transformers_model
+        from triage.models.transformers_backend import load_transformers_model
 
         model = load_transformers_model(model_dir)
         hi = min(60, (model.max_target_tokens or 62) - 2)
@@ -237,7 +237,7 @@ def scale_check(n_big: int = 10_000, n_small: int = 1_000, threads: int | None =
     out: dict[str, Any] = {}
     runs = [("small1", n_small), ("big", n_big), ("small2", n_small)]  # small runs around the big one
     for key, n in runs:
-        cmd = [sys.executable, "-m", "triage.bench", "--scale-worker", str(n), "--scale-model", model_dir]
+        cmd = [sys.executable, "-m", "benchmarks.bench", "--scale-worker", str(n), "--scale-model", model_dir]
         if threads:
             cmd += ["--threads", str(threads)]
         proc = subprocess.run(cmd, capture_output=True, text=True, check=False)
@@ -262,7 +262,7 @@ def run(rows_n: int = 256, chunk: int = 64, quick: bool = False, size: dict[str,
         token_budget: int = 4096, threads: int | None = None, log=print) -> dict[str, Any]:
     import torch
 
-    from .scoring import ScoreRequest, _fast_path_usable
+    from triage.scoring.scorer import ScoreRequest, _fast_path_usable
 
     if threads:
         torch.set_num_threads(threads)

@@ -14,7 +14,7 @@ from dataclasses import dataclass
 
 import torch
 
-from .settings import DecoderSettings
+from triage.settings import DecoderSettings
 
 
 @dataclass
@@ -35,7 +35,7 @@ def decode(model, settings: DecoderSettings, source_ids: Sequence[Sequence[int]]
     if not source_ids:
         return []
     if not uses_generate(model, settings):
-        from .beam import beam_search
+        from triage.decoding.beam import beam_search
 
         out: list[Decoded] = []
         for start in range(0, len(source_ids), batch_size):

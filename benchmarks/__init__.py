@@ -1,0 +1,1 @@
+"""Speed and memory benchmarks (outside the library package)."""
