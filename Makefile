@@ -19,6 +19,7 @@ demo: setup
 
 lint: setup
 	$(BIN)/ruff check triage tests benchmarks
+	$(BIN)/lint-imports
 
 test: lint
 	$(BIN)/python -m pytest -q
