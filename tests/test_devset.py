@@ -16,7 +16,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from triage.data.devset import FRAME_COLUMNS, iter_devset_chunks, read_devset
+from triage.data.devset import FRAME_COLUMNS, read_devset, stream_devset
 from triage.errors import InputError, OptionError
 
 
@@ -340,7 +340,7 @@ def _big_csv(tmp_path: Path, n: int) -> str:
 
 def test_chunks_concatenate_to_the_full_read(tmp_path):
     path = _big_csv(tmp_path, 25)
-    chunks = list(iter_devset_chunks(path, chunk_rows=10))
+    chunks = list(stream_devset(path).chunks(10))
     assert [len(c) for c in chunks] == [10, 10, 5]
     whole = read_devset(path).frame
     pd.testing.assert_frame_equal(pd.concat(chunks, ignore_index=True), whole)
@@ -350,14 +350,14 @@ def test_chunks_concatenate_to_the_full_read(tmp_path):
 
 def test_streaming_is_lazy_and_duplicates_across_chunks_are_caught(tmp_path):
     data = "source\treference\n" + "".join(f"s{i}\tr{i}\n" for i in range(5)) + "bad\n"
-    it = iter_devset_chunks(write(tmp_path, "late.csv", data.replace("\t", ",")), chunk_rows=2)
+    it = stream_devset(write(tmp_path, "late.csv", data.replace("\t", ","))).chunks(2)
     first = next(it)  # handed out before the broken last line is read
     assert list(first["source"]) == ["s0", "s1"]
     with pytest.raises(InputError, match=r"late\.csv:7: row has 1 cells but the header has 2"):
         list(it)
     dup = "id,source,reference\n" + "".join(f"k{i},s,r\n" for i in range(5)) + "k1,s,r\n"
     with pytest.raises(InputError, match=r"id 'k1' appears twice: on line 3 and line 7"):
-        list(iter_devset_chunks(write(tmp_path, "dup.csv", dup), chunk_rows=2))
+        list(stream_devset(write(tmp_path, "dup.csv", dup)).chunks(2))
 
 
 def test_streaming_memory_stays_bounded(tmp_path):
@@ -365,7 +365,7 @@ def test_streaming_memory_stays_bounded(tmp_path):
     tracemalloc.start()
     try:
         rows = 0
-        for chunk in iter_devset_chunks(path, chunk_rows=500):
+        for chunk in stream_devset(path).chunks(500):
             rows += len(chunk)
         _, stream_peak = tracemalloc.get_traced_memory()
         tracemalloc.reset_peak()

@@ -41,7 +41,7 @@ source or reference is an error; an empty output is kept as "" (the model produc
 In JSONL, ``"output": null`` counts as no output; an output must be given on every line or on none.
 Every input record becomes exactly one row, in input order, with the 1-based line number
 where the record starts. Files are read as UTF-8 (a byte-order mark is dropped, CRLF line
-ends are accepted). Reading streams (see ``iter_devset_chunks``), so a dev set larger than
+ends are accepted). Reading streams (see ``stream_devset``), so a dev set larger than
 memory can be processed chunk by chunk.
 
 Line splitting is done on ``\\n`` bytes only, so characters such as U+2028 or form feed
@@ -89,45 +89,6 @@ class DevSet:
 # ----------------------------------------------------------------------------- public API
 
 
-def read_devset(
-    path: str | None = None,
-    *,
-    source: str | None = None,
-    references: list[str] | None = None,
-    output: str | None = None,
-    columns: dict[str, str] | None = None,
-    fmt: str | None = None,
-) -> DevSet:
-    """Read the whole dev set into one DataFrame (see the module docstring for the formats)."""
-    stream = stream_devset(path, source=source, references=references, output=output, columns=columns, fmt=fmt)
-    chunks = list(stream.chunks(50_000))
-    frame = pd.concat(chunks, ignore_index=True) if len(chunks) > 1 else chunks[0].reset_index(drop=True)
-    return DevSet(frame=frame, path=stream.path, sha256=stream.sha256, fmt=stream.fmt,
-                  has_output=bool(stream.has_output), name=stream.name)
-
-
-def iter_devset_chunks(
-    path: str | None = None,
-    *,
-    source: str | None = None,
-    references: list[str] | None = None,
-    output: str | None = None,
-    columns: dict[str, str] | None = None,
-    fmt: str | None = None,
-    chunk_rows: int = 10000,
-) -> Iterator[pd.DataFrame]:
-    """Yield the dev set as DataFrames of at most ``chunk_rows`` rows (same columns as DevSet.frame).
-
-    Memory stays bounded by the chunk size (plus each row's id and line, for the duplicate check).
-    Errors are raised when reached; for TSV files the layout is checked in a first pass, so
-    layout errors come before the first chunk.
-    """
-    if chunk_rows < 1:
-        raise OptionError(f"chunk_rows must be at least 1, got {chunk_rows}")
-    stream = stream_devset(path, source=source, references=references, output=output, columns=columns, fmt=fmt)
-    return stream.chunks(chunk_rows)
-
-
 def stream_devset(
     path: str | None = None,
     *,
@@ -137,9 +98,21 @@ def stream_devset(
     columns: dict[str, str] | None = None,
     fmt: str | None = None,
 ) -> DevSetStream:
-    """The dev set as a stream: read from disk step by step, never whole (see DevSetStream)."""
+    """The dev set as a stream: read from disk step by step, never whole (see DevSetStream).
+
+    This is the one reader: ``read_devset`` reads the same stream through to the end, and
+    ``stream_devset(...).chunks(n)`` hands it out ``n`` rows at a time.
+    """
     spec = _Spec.make(path, source, references, output, columns, fmt)
     return DevSetStream(spec, spec.display, spec.fmt, spec.name)
+
+
+def read_devset(path: str | None = None, **where) -> DevSet:
+    """The whole dev set in one DataFrame: ``stream_devset(path, **where).read()``.
+
+    Takes stream_devset's arguments (``source``, ``references``, ``output``, ``columns``, ``fmt``).
+    """
+    return stream_devset(path, **where).read()
 
 
 @dataclass
@@ -178,6 +151,13 @@ class DevSetStream:
         for _ in self.chunks(chunk_rows):
             pass
         return self
+
+    def read(self) -> DevSet:
+        """Read the stream through once and hold every row (a DevSet)."""
+        chunks = list(self.chunks(50_000))
+        frame = pd.concat(chunks, ignore_index=True) if len(chunks) > 1 else chunks[0].reset_index(drop=True)
+        return DevSet(frame=frame, path=self.path, sha256=str(self.sha256), fmt=self.fmt,
+                      has_output=bool(self.has_output), name=self.name)
 
 
 # ----------------------------------------------------------------------------- arguments
