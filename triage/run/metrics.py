@@ -1,4 +1,12 @@
-"""Sentence and corpus metrics from sacrebleu (chrF by default, BLEU on request)."""
+"""Sentence and corpus metrics from sacrebleu (chrF by default, BLEU on request).
+
+Sentence scores and signatures use sacrebleu's public API. A streamed corpus score needs the
+per-segment statistics that sacrebleu's public ``corpus_score`` sums internally and does not
+hand out, so ``CorpusStats`` calls three of its private methods (``_check_corpus_score_args``,
+``_extract_corpus_statistics``, ``_compute_score_from_stats``), here and nowhere else. They are
+tested on the versions pyproject.toml allows (``SACREBLEU_TESTED``): tests/test_metrics.py checks
+the summed statistics against the public ``corpus_score`` and the installed version against the pin.
+"""
 
 from __future__ import annotations
 
@@ -6,6 +14,8 @@ import math
 from collections.abc import Sequence
 
 METRICS = ("chrf", "bleu")
+# the sacrebleu versions CorpusStats is tested on (the pin in pyproject.toml; private methods may change after)
+SACREBLEU_TESTED = ">=2.4,<2.7"
 
 
 def _metric(name: str, sentence: bool):
