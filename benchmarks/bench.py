@@ -145,6 +145,19 @@ def run_naive(model, rows):
     return time.perf_counter() - t0, sums
 
 
+def _padded(rows, pad_id: int):
+    """Right-padded ids [B, S] and their attention mask, as generate takes them."""
+    import torch
+
+    width = max(len(r) for r in rows)
+    ids = torch.full((len(rows), width), pad_id, dtype=torch.long)
+    mask = torch.zeros((len(rows), width), dtype=torch.long)
+    for i, r in enumerate(rows):
+        ids[i, : len(r)] = torch.tensor(r, dtype=torch.long)
+        mask[i, : len(r)] = 1
+    return ids, mask
+
+
 def run_generate(model, rows, batch: int = 16):
     """generate(num_beams=4) on the sources, batches of `batch` length-sorted rows.
 
@@ -161,7 +174,7 @@ def run_generate(model, rows, batch: int = 16):
     with torch.inference_mode():
         for a in range(0, len(order), batch):
             idx = order[a : a + batch]
-            ids, mask = model._pad([rows[i][0] for i in idx])
+            ids, mask = _padded([rows[i][0] for i in idx], model.pad_id)
             n_new = round(sum(len(rows[i][1]) + 1 for i in idx) / len(idx))
             out = hf.generate(input_ids=ids, attention_mask=mask, num_beams=4, do_sample=False,
                               min_new_tokens=n_new, max_new_tokens=n_new, length_penalty=1.0,

@@ -93,7 +93,8 @@ def _in_memory_worker(model_dir: str, data: str, out: str, chunk_rows: int) -> N
 
     torch.set_num_threads(1)
     import triage
-    from triage.run.pipeline import TriageOptions, model_info
+    from triage.models.describe import model_info
+    from triage.run.pipeline import TriageOptions
 
     model = triage.load_model(model_dir)
     dev = triage.read_devset(data)

@@ -9,8 +9,9 @@ import pytest
 import torch
 from tinymodels import make_tokenizer, sentences
 
+from triage.models.describe import model_settings
 from triage.models.transformers_backend import load_transformers_model
-from triage.run.pipeline import TriageOptions, model_settings, run_triage
+from triage.run.pipeline import TriageOptions, run_triage
 
 
 def _bart(path):

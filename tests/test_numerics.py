@@ -13,8 +13,8 @@ import pytest
 import torch
 from tinymodels import WORDS, make_marian
 
+from triage.models.describe import model_settings
 from triage.models.transformers_backend import TransformersModel
-from triage.run.pipeline import model_settings
 from triage.scoring.scorer import ScoreRequest, score_requests
 
 N_TOKENS = 500  # scored tokens: 499 words and the end token

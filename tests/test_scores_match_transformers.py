@@ -15,8 +15,8 @@ import torch
 from tinymodels import make_marian, sentences
 
 from triage.decoding.decode import decode
+from triage.models.describe import model_settings
 from triage.models.transformers_backend import TransformersModel
-from triage.run.pipeline import model_settings
 from triage.scoring.scorer import ScoreRequest, score_requests
 from triage.settings import DecoderSettings
 

@@ -75,9 +75,10 @@ def test_summed_statistics_equal_sacrebleu_corpus_score(rows, cuts, name):
 
 # ---------------------------------------------------------------------------------------- same files
 def test_streamed_cli_run_writes_the_files_of_the_in_memory_run(tmp_path, tiny_model_dir, capsys):
+    from triage.models.describe import model_info
     from triage.models.loading import load_model
     from triage.run.analysis import recommend
-    from triage.run.pipeline import TriageOptions, model_info, run_triage
+    from triage.run.pipeline import TriageOptions, run_triage
     from triage.studies.sweeps import run_sweeps
 
     dev = _devset(tmp_path / "dev.csv")

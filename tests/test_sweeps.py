@@ -16,9 +16,10 @@ from tinymodels import make_marian, sentences
 
 from triage.decoding.decode import decode
 from triage.errors import OptionError
+from triage.models.describe import model_settings
 from triage.models.transformers_backend import TransformersModel
 from triage.run.analysis import recommend
-from triage.run.pipeline import TriageOptions, model_settings, run_triage
+from triage.run.pipeline import TriageOptions, run_triage
 from triage.studies.sweeps import estimate_seconds, merge_sweeps, parse_alphas, parse_widths, run_sweeps
 
 N = 32

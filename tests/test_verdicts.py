@@ -13,9 +13,10 @@ import torch
 from sacrebleu.metrics import BLEU, CHRF
 from tinymodels import make_marian, sentences
 
+from triage.models.describe import model_settings
 from triage.models.transformers_backend import TransformersModel
 from triage.run.analysis import assign_bucket, bucket_labels, wilson_interval
-from triage.run.pipeline import TriageOptions, model_settings, run_triage
+from triage.run.pipeline import TriageOptions, run_triage
 
 
 @pytest.fixture(scope="module")

@@ -198,8 +198,8 @@ def cmd_run(a: argparse.Namespace) -> int:
         import torch
 
         torch.set_num_threads(a.threads)
+    from triage.models.describe import model_settings
     from triage.models.loading import load_model
-    from triage.run.pipeline import model_settings
 
     model = load_model(a.model, device=a.device, allow_pickle=a.allow_pickle,
                        trust_remote_code=a.trust_remote_code)
@@ -223,8 +223,9 @@ def cmd_run(a: argparse.Namespace) -> int:
         options.edges = edges
     if not a.no_cache:
         options.cache_dir = Path(a.cache_dir) if a.cache_dir else out_dir / ".cache"
+    from triage.models.describe import model_info
     from triage.run.analysis import recommend, settings_mismatch
-    from triage.run.pipeline import model_info, run_triage
+    from triage.run.pipeline import run_triage
     from triage.rundir.writer import RunWriter
 
     info = model_info(model, a.model)

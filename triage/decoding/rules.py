@@ -5,8 +5,9 @@ processors built from the generation config (forced tokens, minimum length, bann
 n-gram blocking, repetition penalty). Teacher-forced scoring applies the very same list to
 the very same log-probs, so a rule counts exactly as it did in decoding.
 
-For a transformers checkpoint the list is the one the model's own ``_get_logits_processor``
-builds; for any other model it is built here from the same classes.
+A model with its own rules (the OwnGenerationRules capability: a transformers checkpoint
+returns the list its ``_get_logits_processor`` builds) gives the list itself; for any other
+model it is built here from the same classes.
 """
 
 from __future__ import annotations
@@ -15,6 +16,7 @@ from typing import Any
 
 import torch
 
+from triage.models.api import capabilities
 from triage.settings import DecoderSettings
 
 # processor class name -> the rule's plain name (used in `blocked` reasons)
@@ -37,34 +39,10 @@ def rule_name(processor: Any) -> str:
     return RULE_NAMES.get(type(processor).__name__, type(processor).__name__)
 
 
-def _generation_config(settings: DecoderSettings, base: Any = None) -> Any:
-    if settings.penalty == "gnmt":
-        # the rules do not depend on the length penalty, and transformers has no gnmt form
-        settings = settings.replace(penalty="none")
-    gc = settings.to_generation_config(base)
-    # processors see max_length = start token + allowed new tokens, as inside generate
-    gc.max_length = settings.limit_new_tokens() + 1
-    gc.max_new_tokens = None
-    return gc
-
-
 def build_processors(model: Any, settings: DecoderSettings, source_ids: torch.Tensor | None = None):
     """The logits processors the decoder applies at each step, for a batch of sources [B, S]."""
-    from transformers import LogitsProcessorList
-
-    hf = getattr(model, "model", None)
-    if hf is not None and hasattr(hf, "_get_logits_processor"):
-        gc = _generation_config(settings, hf.generation_config)
-        hf._prepare_special_tokens(gc, True, device=source_ids.device if source_ids is not None else "cpu")
-        return hf._get_logits_processor(
-            generation_config=gc,
-            input_ids_seq_length=1,
-            encoder_input_ids=source_ids,
-            prefix_allowed_tokens_fn=None,
-            logits_processor=LogitsProcessorList(),
-            device="cpu",
-            model_kwargs={},
-        )
+    if capabilities(model).own_generation_rules:
+        return model.logits_processors(settings, source_ids)
     return _build_generic(model, settings, source_ids)
 
 

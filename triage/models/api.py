@@ -11,20 +11,46 @@ Conventions
   after the start token, WITHOUT the end token: triage appends ``end_id`` itself.
 - ``next_logprobs`` returns natural-log probabilities over the whole vocabulary, float32,
   already log-softmax normalized (rules such as banned words are applied by triage on top).
-- Optional ``default_settings``: the DecoderSettings your outputs were decoded with (beam,
-  penalty, alpha, length limit). Without it triage assumes greedy search with a length limit of
-  ``max_target_tokens`` (or transformers' default of 19 new tokens when that is None).
 - ``state`` is whatever ``encode`` returns; it holds one entry per batch row. ``select``
   picks rows of it (and of the cache) by index: beam search uses it to repeat a source per
   beam and to reorder beams after each step.
+
+Optional capabilities
+---------------------
+Everything beyond ``SequenceModel`` is an optional capability, each its own small protocol
+below. A model offers one by having its members; triage asks which ones a model has in one
+place only, ``capabilities(model)``, and falls back to the plain interface (same numbers,
+slower or plainer) for every capability a model lacks. A new model family plugs in by
+implementing the protocols that fit it; nothing else in triage looks at a model's type or
+probes its attributes.
+
+==========================  ===============================================================
+``BatchedForcedScoring``    ``forced_logprobs``: teacher-forced log-probs at every position
+                            in one pass (else: step through ``next_logprobs``)
+``TargetLogprobScoring``    ``forced_target_logprobs``: only the target tokens' log-probs
+                            (used when no generation rule applies)
+``PositionScoring``         ``encode_grouped`` + ``score_positions``: log-probs at chosen
+                            positions only (prefix-tree scoring, no generation rule)
+``OwnGenerationRules``      ``logits_processors``: the rules as the model's own decoder
+                            builds them (else: built from the settings with the same classes)
+``OwnDecoder``              ``decodes`` + ``generate``: decode with the model's own decoder
+                            where it expresses the objective (else: triage's beam search)
+``DefaultSettings``         ``default_settings``: the DecoderSettings the outputs were decoded
+                            with (else: greedy, length limit ``max_target_tokens`` or 19)
+``Described``               ``describe()``: what the report says about the model (path,
+                            architecture, parameters, tokenizer, vocabulary size)
+==========================  ===============================================================
 """
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, fields
 from typing import Any, Protocol, runtime_checkable
 
 import torch
+
+from triage.settings import DecoderSettings
 
 
 @runtime_checkable
@@ -73,15 +99,137 @@ class SequenceModel(Protocol):
         ...
 
 
+# ---------------------------------------------------------------------------------- capabilities
+@runtime_checkable
+class BatchedForcedScoring(Protocol):
+    def forced_logprobs(self, state: Any, decoder_inputs: torch.Tensor) -> torch.Tensor:
+        """Teacher-forced log-probs [B, T, V] at every position of `decoder_inputs` [B, T], one pass."""
+        ...
+
+
+@runtime_checkable
+class TargetLogprobScoring(Protocol):
+    def forced_target_logprobs(self, state: Any, decoder_inputs: torch.Tensor,
+                               targets: torch.Tensor) -> torch.Tensor:
+        """Log-prob [B, T] of targets[:, t] after decoder_inputs[:, :t+1] (teacher forcing)."""
+        ...
+
+
+@runtime_checkable
+class PositionScoring(Protocol):
+    def encode_grouped(self, sources: Sequence[Sequence[int]]) -> Any:
+        """``encode`` (same state layout), free to batch internally by length."""
+        ...
+
+    def score_positions(self, state: Any, rows: torch.Tensor, decoder_inputs: torch.Tensor,
+                        picks: torch.Tensor, labels: torch.Tensor,
+                        lengths: Sequence[int] | None = None) -> torch.Tensor:
+        """Teacher-forced log-probs [M, K] of `labels` [M, K] at flat positions `picks` [M]
+        (r * T + t) of `decoder_inputs` [R, T] run against encoder rows `rows` [R] of `state`;
+        `lengths`: real tokens per run."""
+        ...
+
+
+@runtime_checkable
+class OwnGenerationRules(Protocol):
+    def logits_processors(self, settings: DecoderSettings, source_ids: torch.Tensor | None) -> Any:
+        """The generation rules of `settings` for sources [B, S], as the model's own decoder builds
+        them: a transformers LogitsProcessorList (empty when no rule applies)."""
+        ...
+
+
+@dataclass
+class Generated:
+    """One output of a model's own decoder."""
+
+    ids: list[int]      # target ids, without start and end token
+    score: float        # the objective the decoder maximized
+    finished: bool      # ended with the end token (False: stopped at the length limit)
+
+
+@runtime_checkable
+class OwnDecoder(Protocol):
+    def decodes(self, settings: DecoderSettings) -> bool:
+        """Whether the model's own decoder can decode with exactly this objective."""
+        ...
+
+    def generate(self, settings: DecoderSettings, sources: Sequence[Sequence[int]], *, batch_size: int = 16,
+                 progress: Callable[[int], None] | None = None) -> list[Generated]:
+        """Decode every source with the model's own decoder; results in input order."""
+        ...
+
+
+@runtime_checkable
+class DefaultSettings(Protocol):
+    #: the decoder settings the outputs were decoded with (triage's flags override them)
+    default_settings: DecoderSettings
+
+
+@runtime_checkable
+class Described(Protocol):
+    def describe(self) -> dict[str, Any]:
+        """What the report says about the model, in this order where known: path, architecture,
+        parameters, tokenizer, vocab."""
+        ...
+
+
+@dataclass(frozen=True)
+class Capabilities:
+    """Which optional capabilities a model offers (see the module docstring)."""
+
+    batched_forced_scoring: bool = False
+    target_logprob_scoring: bool = False
+    position_scoring: bool = False
+    own_generation_rules: bool = False
+    own_decoder: bool = False
+    default_settings: bool = False
+    described: bool = False
+
+    def names(self) -> list[str]:
+        return [f.name for f in fields(self) if getattr(self, f.name)]
+
+
+#: each capability's field in Capabilities and its protocol
+PROTOCOLS: dict[str, type] = {
+    "batched_forced_scoring": BatchedForcedScoring,
+    "target_logprob_scoring": TargetLogprobScoring,
+    "position_scoring": PositionScoring,
+    "own_generation_rules": OwnGenerationRules,
+    "own_decoder": OwnDecoder,
+    "default_settings": DefaultSettings,
+    "described": Described,
+}
+
+
+def capabilities(model: Any) -> Capabilities:
+    """The optional capabilities `model` offers: the one place triage asks.
+
+    A member must be there and, for a method, callable; ``default_settings`` must be a
+    DecoderSettings.
+    """
+    has = {}
+    for name, proto in PROTOCOLS.items():
+        ok = isinstance(model, proto)
+        if ok and proto is DefaultSettings:
+            ok = isinstance(model.default_settings, DecoderSettings)
+        elif ok:
+            ok = all(callable(getattr(model, m)) for m in _methods(proto))
+        has[name] = ok
+    return Capabilities(**has)
+
+
+def _methods(proto: type) -> list[str]:
+    return [m for m in vars(proto) if not m.startswith("_") and callable(vars(proto)[m])]
+
+
 def forced_logprobs(model: SequenceModel, state: Any, decoder_inputs: torch.Tensor) -> torch.Tensor:
     """Teacher-forced log-probs [B, T, V] at every position of `decoder_inputs` [B, T].
 
     Uses the model's own batched method when it has one (``forced_logprobs``), else steps
     through ``next_logprobs`` with its cache: slower, same numbers.
     """
-    own = getattr(model, "forced_logprobs", None)
-    if own is not None:
-        return own(state, decoder_inputs)
+    if capabilities(model).batched_forced_scoring:
+        return model.forced_logprobs(state, decoder_inputs)
     steps = []
     cache = None
     for t in range(decoder_inputs.shape[1]):

@@ -9,13 +9,15 @@ from __future__ import annotations
 
 import hashlib
 import os
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
 
 import torch
 
 from triage.errors import ModelError
+from triage.models.api import Generated
+from triage.settings import DecoderSettings
 
 WEIGHT_SAFE = (".safetensors",)
 WEIGHT_PICKLE = (".bin", ".pt", ".pth", ".ckpt", ".pkl")
@@ -33,6 +35,8 @@ FINGERPRINT_FILES = (
     "sentencepiece.bpe.model",
 )
 
+
+_UNCHECKED = object()  # the output head not yet checked (TransformersModel._head)
 
 # a tokenizer saved with save_pretrained leaves at least one of these (fast, BPE, SentencePiece, WordPiece);
 # a few (byte-level ones) need none, so their absence only explains a tokenizer that failed to load
@@ -89,7 +93,12 @@ def _check_weights(model_dir: Path, allow_pickle: bool) -> None:
 
 
 class TransformersModel:
-    """SequenceModel over a transformers AutoModelForSeq2SeqLM and its tokenizer."""
+    """SequenceModel over a transformers AutoModelForSeq2SeqLM and its tokenizer.
+
+    Beyond the interface it offers every optional capability of triage.models.api: batched
+    forced scoring, target and position scoring, the checkpoint's own generation rules and
+    ``generate``, the checkpoint's decoder settings and a description for the report.
+    """
 
     def __init__(self, model: Any, tokenizer: Any, model_dir: Path | None = None, device: str = "cpu"):
         self.model = model.eval()
@@ -147,6 +156,85 @@ class TransformersModel:
                     h.update(v.detach().cpu().contiguous().numpy().tobytes())
                 self._fingerprint = h.hexdigest()
         return self._fingerprint
+
+    # -------------------------------------------------------------- what the checkpoint says
+    @property
+    def default_settings(self) -> DecoderSettings:
+        """The decoder settings of the checkpoint's generation config."""
+        origin = f"generation_config.json of {self.model_dir}" if self.model_dir else "generation_config"
+        return DecoderSettings.from_generation_config(self.model.generation_config, origin=origin)
+
+    def describe(self) -> dict[str, Any]:
+        info: dict[str, Any] = {}
+        if self.model_dir is not None:
+            info["path"] = str(self.model_dir)
+        info["architecture"] = type(self.model).__name__
+        info["parameters"] = int(sum(p.numel() for p in self.model.parameters()))
+        info["tokenizer"] = type(self.tokenizer).__name__
+        info["vocab"] = len(self.tokenizer)
+        return info
+
+    # -------------------------------------------------------------- the checkpoint's own decoder
+    def logits_processors(self, settings: DecoderSettings, source_ids: torch.Tensor | None = None) -> Any:
+        """The processors transformers' generate builds for these settings, for sources [B, S]."""
+        from transformers import LogitsProcessorList
+
+        hf = self.model
+        if settings.penalty == "gnmt":
+            # the rules do not depend on the length penalty, and transformers has no gnmt form
+            settings = settings.replace(penalty="none")
+        gc = settings.to_generation_config(hf.generation_config)
+        # processors see max_length = start token + allowed new tokens, as inside generate
+        gc.max_length = settings.limit_new_tokens() + 1
+        gc.max_new_tokens = None
+        hf._prepare_special_tokens(gc, True, device=source_ids.device if source_ids is not None else "cpu")
+        return hf._get_logits_processor(
+            generation_config=gc,
+            input_ids_seq_length=1,
+            encoder_input_ids=source_ids,
+            prefix_allowed_tokens_fn=None,
+            logits_processor=LogitsProcessorList(),
+            device="cpu",
+            model_kwargs={},
+        )
+
+    def decodes(self, settings: DecoderSettings) -> bool:
+        """generate expresses every objective but the gnmt penalty."""
+        return settings.penalty != "gnmt"
+
+    @torch.inference_mode()
+    def generate(self, settings: DecoderSettings, sources: Sequence[Sequence[int]], *, batch_size: int = 16,
+                 progress: Callable[[int], None] | None = None) -> list[Generated]:
+        """transformers' generate over length-sorted batches; results in input order."""
+        gc = settings.to_generation_config(self.model.generation_config)
+        gc.return_dict_in_generate = True
+        gc.output_scores = True
+        order = sorted(range(len(sources)), key=lambda i: len(sources[i]))
+        results: list[Generated | None] = [None] * len(sources)
+        for start in range(0, len(order), batch_size):
+            idx = order[start : start + batch_size]
+            ids, mask = self._pad([sources[i] for i in idx])
+            out = self.model.generate(input_ids=ids, attention_mask=mask, generation_config=gc)
+            seqs = out.sequences[:, 1:]  # drop the decoder start token
+            if settings.beam > 1:
+                scores = out.sequences_scores.tolist()
+            else:
+                trans = self.model.compute_transition_scores(out.sequences, out.scores, normalize_logits=True)
+                trans = torch.where(torch.isfinite(trans), trans, torch.zeros_like(trans))
+                scores = None
+            for k, i in enumerate(idx):
+                row = seqs[k].tolist()
+                finished = self.end_id in row
+                toks = row[: row.index(self.end_id)] if finished else row
+                if scores is not None:
+                    score = float(scores[k])
+                else:
+                    n = len(toks) + (1 if finished else 0)
+                    score = float(trans[k, :n].sum())
+                results[i] = Generated(toks, score, finished)
+            if progress:
+                progress(len(idx))
+        return results  # type: ignore[return-value]
 
     # -------------------------------------------------------------- tensors
     def _pad(self, rows: Sequence[Sequence[int]]) -> tuple[torch.Tensor, torch.Tensor]:
@@ -206,6 +294,8 @@ class TransformersModel:
     # -------------------------------------------------------------- scoring only where needed
     #: most logits held at once by score_positions (floats); bounds memory, keeps matmuls large
     logits_budget: int = 1 << 25
+    #: the output head's parts once checked (see _head); None: the formula does not reproduce it
+    _head_parts: Any = _UNCHECKED
 
     def _head(self) -> tuple[torch.Tensor, torch.Tensor | None, float] | None:
         """(weight, bias, scale) with logits = (decoder_hidden * scale) @ weight.T + bias, or None.
@@ -213,7 +303,7 @@ class TransformersModel:
         Checked once against the model's own full forward; a head this formula does not
         reproduce (within 1e-5) makes score_positions use the full forward instead.
         """
-        if hasattr(self, "_head_parts"):
+        if self._head_parts is not _UNCHECKED:
             return self._head_parts
         self._head_parts = None
         hf = self.model

@@ -30,6 +30,7 @@ import pandas as pd
 
 from triage import __version__
 from triage.errors import OptionError
+from triage.models.describe import model_settings
 from triage.run.analysis import (
     DEFAULT_EDGES,
     assign_bucket,
@@ -39,7 +40,7 @@ from triage.run.analysis import (
 )
 from triage.run.metrics import CorpusStats, sentence_scores
 from triage.run.verdicts import COMPARED, FAILED, VERDICTS, decide, matches_any
-from triage.scoring.scorer import ScoreRequest, TargetScore, score_requests
+from triage.scoring.scorer import ScoreRequest, TargetScore, score_requests, source_problem
 from triage.settings import DecoderSettings
 
 DEFAULT_MARGIN = 1e-4
@@ -117,22 +118,6 @@ class Tally:
             self.foreign[rule] = self.foreign.get(rule, 0) + len(lines)
         if part.foreign and self.foreign_line is None:  # steps come in input order: the first step's smallest
             self.foreign_line = min(min(lines) for lines in part.foreign.values())
-
-
-def model_settings(model: Any, **overrides: Any) -> DecoderSettings:
-    """The decoder's settings: the checkpoint's generation config, then the overrides."""
-    hf = getattr(model, "model", None)
-    if hf is not None and getattr(hf, "generation_config", None) is not None:
-        origin = f"generation_config.json of {model.model_dir}" if getattr(model, "model_dir", None) else "generation_config"
-        return DecoderSettings.from_generation_config(hf.generation_config, origin=origin, **overrides)
-    base = getattr(model, "default_settings", None)
-    if isinstance(base, DecoderSettings):
-        return base.replace(**{k: v for k, v in overrides.items() if v is not None})
-    kw = {"eos_token_ids": (model.end_id,), "decoder_start_token_id": model.start_id, "pad_token_id": model.pad_id}
-    if getattr(model, "max_target_tokens", None):
-        kw["max_new_tokens"] = int(model.max_target_tokens)
-    kw.update({k: v for k, v in overrides.items() if v is not None})
-    return DecoderSettings(origin="defaults", **kw)
 
 
 def _bar(total: int | None, desc: str, enabled: bool):
@@ -334,13 +319,11 @@ def _special_ids(model) -> set[int]:
 
 
 def _source_problem(model, ids: list[int]) -> str | None:
-    """Why a source cannot be scored though scoring would run: it holds no token but special ones."""
+    """Why a source cannot be scored: it holds no token but special ones, or scoring's own source
+    check (empty, too long) fails."""
     if ids and not set(ids) - _special_ids(model):
         return "no tokens after tokenization apart from special ones " + _pieces(model, ids)
-    most = getattr(model, "max_source_tokens", None)
-    if most is not None and len(ids) > most:
-        return f"{len(ids)} tokens, the model takes at most {most} (nothing is cut off)"
-    return None
+    return source_problem(model, ids)
 
 
 def _target_problem(model, text: str, ids: list[int]) -> str | None:
@@ -351,7 +334,7 @@ def _target_problem(model, text: str, ids: list[int]) -> str | None:
     sequence the decoder would emit. Either way the target is skipped, never scored as is.
     An empty output (the decoder ended at once) stays scorable: its score is the end token's.
     """
-    unk = getattr(model, "unk_id", None)
+    unk = model.unk_id
     if unk is not None and unk in ids:
         return "unknown to the tokenizer: " + _unknown_parts(model, text, unk)
     special = [t for t in ids if t in _special_ids(model)]
@@ -438,23 +421,6 @@ def _score_with_cache(model, settings, options, cache, requests):
         if cache is not None:
             cache.put_many([(requests[k], r) for k, r in zip(todo, out, strict=True)])
     return results
-
-
-def model_info(model, spec: str) -> dict[str, Any]:
-    """What the report says about the model: where it came from and its fingerprint."""
-    info: dict[str, Any] = {"spec": spec, "sha256": model.fingerprint()}
-    path = getattr(model, "model_dir", None)
-    if path is not None:
-        info["path"] = str(path)
-    hf = getattr(model, "model", None)
-    if hf is not None and hasattr(hf, "config"):
-        info["architecture"] = type(hf).__name__
-        info["parameters"] = int(sum(p.numel() for p in hf.parameters()))
-    tok = getattr(model, "tokenizer", None)
-    if tok is not None:
-        info["tokenizer"] = type(tok).__name__
-        info["vocab"] = len(tok)
-    return info
 
 
 def _num(x: float) -> float:

@@ -10,7 +10,7 @@ When the settings carry generation rules, the rules (transformers' logits proces
 applied to each position's log-probs exactly as the decoder applied them; a target token the
 rules set to minus infinity makes the target `blocked`, and the rule is named.
 
-Without generation rules (and with a model offering ``score_positions``) the targets of a
+Without generation rules (and with a model offering PositionScoring) the targets of a
 row are laid out as a prefix tree: a decoder position is fixed by the tokens before it, so
 a position that several targets share (an output that starts like its reference) is
 projected onto the vocabulary once, and a target whose every position is already in the
@@ -28,7 +28,7 @@ from dataclasses import dataclass, field
 import torch
 
 from triage.decoding.rules import apply_rules, build_processors, first_blocking_rule
-from triage.models.api import SequenceModel, forced_logprobs
+from triage.models.api import SequenceModel, capabilities, forced_logprobs
 from triage.settings import DecoderSettings
 
 #: most log-probs the rules path holds at once (it keeps whole vocabulary vectors per position)
@@ -122,18 +122,30 @@ def score_requests(
 
 
 def _fast_path_usable(model, settings, requests, by_row) -> bool:
-    """Prefix-tree scoring needs the model's score_positions and no active generation rule."""
-    if not by_row or not hasattr(model, "score_positions"):
+    """Prefix-tree scoring needs the PositionScoring capability and no active generation rule."""
+    if not by_row or not capabilities(model).position_scoring:
         return False
     first = next(iter(by_row))
     return not build_processors(model, settings, _source_tensor(model, [requests[first].source_ids]))
 
 
-def _unscorable(model: SequenceModel, source_ids: list[int], labels: list[int]) -> str | None:
+def source_problem(model: SequenceModel, source_ids: Sequence[int]) -> str | None:
+    """Why the model cannot read a source at all: empty, or longer than it takes.
+
+    The one source check of scoring; the run reports it as ``source: <this>``.
+    """
     if not source_ids:
-        return "source is empty after tokenization"
-    if model.max_source_tokens is not None and len(source_ids) > model.max_source_tokens:
-        return f"source has {len(source_ids)} tokens, the model takes at most {model.max_source_tokens}"
+        return "empty after tokenization"
+    most = model.max_source_tokens
+    if most is not None and len(source_ids) > most:
+        return f"{len(source_ids)} tokens, the model takes at most {most} (nothing is cut off)"
+    return None
+
+
+def _unscorable(model: SequenceModel, source_ids: list[int], labels: list[int]) -> str | None:
+    problem = source_problem(model, source_ids)
+    if problem:
+        return f"source: {problem}"
     if model.max_target_tokens is not None and len(labels) > model.max_target_tokens:
         return f"target has {len(labels)} tokens, the model takes at most {model.max_target_tokens}"
     return None
@@ -167,7 +179,7 @@ def _score_batch(model, settings, requests, batch, by_row, results) -> None:
 
     src = _source_tensor(model, [requests[batch[b]].source_ids for b in index])
     processors = build_processors(model, settings, src)
-    if not processors and hasattr(model, "forced_target_logprobs"):
+    if not processors and capabilities(model).target_logprob_scoring:
         token_lp = model.forced_target_logprobs(state, inputs, labels).float()
         for k, job in enumerate(meta):
             _store(settings, results, job, token_lp[k, : len(job[2])].tolist(), None)
@@ -195,8 +207,7 @@ def _score_batch_tree(model, settings, requests, batch, by_row, results) -> None
     position after the start token. Every node is run through the decoder by one target and
     projected once; each target reads its token's log-prob at each of its nodes.
     """
-    encode = getattr(model, "encode_grouped", model.encode)
-    state = encode([requests[i].source_ids for i in batch])
+    state = model.encode_grouped([requests[i].source_ids for i in batch])
     run_rows: list[int] = []          # encoder row of each decoder run
     run_labels: list[list[int]] = []  # labels of each decoder run
     node_at: list[tuple[int, int]] = []  # node -> (decoder run, position)
