@@ -2,21 +2,28 @@
 fetched from anywhere, the console stays silent, and the row filter works (and the page reads without it).
 
 Chromium is driven from the command line only (--dump-dom, --screenshot, console lines on stderr), so no
-extra Python package is needed. Without a chromium binary the tests skip and say why.
+extra Python package is needed. Without a chromium binary the tests skip and say why, except in CI (the
+environment variable CI set to true, as .ci/run and CI services set it): there a missing browser fails them.
+
+The "nothing fetched" checks have a positive control: the same recorder, behind the same kind of server, sees
+the requests of a page that does make them (the hostile texts written into a page unescaped).
 """
 
 from __future__ import annotations
 
+import contextlib
 import http.server
+import os
 import re
 import shutil
 import subprocess
+import sys
 import tempfile
 import threading
 from pathlib import Path
 
 import pytest
-from test_report import make_run, parse
+from test_report import hostile_texts, make_run, parse
 
 ARTIFACTS = Path(__file__).resolve().parent.parent / "test-artifacts"
 
@@ -30,10 +37,20 @@ def _chromium() -> str | None:
 
 
 CHROMIUM = _chromium()
-pytestmark = pytest.mark.skipif(
-    CHROMIUM is None,
-    reason="no Chromium found (install the Debian package: apt-get install -y chromium); browser checks not run",
-)
+NO_BROWSER = "no Chromium found (install the Debian package: apt-get install -y chromium)"
+
+
+def in_ci() -> bool:
+    return os.environ.get("CI", "").strip().lower() in ("true", "1", "yes")
+
+
+def require_browser() -> str:
+    """The browser every check here drives: without one a skip, or in CI (CI=true) a failure."""
+    if CHROMIUM is None:
+        if in_ci():
+            pytest.fail(f"{NO_BROWSER}; CI=true, so the browser checks must run")
+        pytest.skip(f"{NO_BROWSER}; browser checks not run")
+    return CHROMIUM
 
 
 class _Recorder(http.server.BaseHTTPRequestHandler):
@@ -43,15 +60,16 @@ class _Recorder(http.server.BaseHTTPRequestHandler):
         type(self).hits.append(self.path)
         self.send_response(200)
         self.send_header("Content-Type", "image/png")
+        self.send_header("Content-Length", "0")
         self.end_headers()
 
     def log_message(self, *args):
         pass
 
 
-@pytest.fixture(scope="module")
-def server():
-    """A local web server the hostile texts point at: any request the page made would land here."""
+@contextlib.contextmanager
+def recording_server():
+    """A web server on 127.0.0.1 (a free port) that records the path of every request; stopped on exit."""
 
     class Handler(_Recorder):
         hits: list[str] = []
@@ -59,8 +77,19 @@ def server():
     httpd = http.server.ThreadingHTTPServer(("127.0.0.1", 0), Handler)
     t = threading.Thread(target=httpd.serve_forever, daemon=True)
     t.start()
-    yield f"http://127.0.0.1:{httpd.server_address[1]}", Handler.hits
-    httpd.shutdown()
+    try:
+        yield f"http://127.0.0.1:{httpd.server_address[1]}", Handler.hits
+    finally:
+        httpd.shutdown()
+        httpd.server_close()
+        t.join(timeout=10)
+
+
+@pytest.fixture(scope="module")
+def server():
+    """A local web server the hostile texts point at: any request the page made would land here."""
+    with recording_server() as (url, hits):
+        yield url, hits
 
 
 @pytest.fixture(scope="module")
@@ -71,8 +100,9 @@ def hostile_run(tmp_path_factory, server):
 
 def browse(url: str, *args: str) -> tuple[str, list[str]]:
     """Load `url` in a fresh headless Chromium; return (stdout, console lines from stderr)."""
+    chromium = require_browser()
     profile = tempfile.mkdtemp(prefix="triage-chromium-")
-    cmd = [CHROMIUM, "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
+    cmd = [chromium, "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
            "--disable-background-networking", "--disable-component-update", "--disable-sync",
            "--disable-default-apps", "--disable-extensions", f"--user-data-dir={profile}",
            "--enable-logging=stderr", "--v=0", "--hide-scrollbars", *args]
@@ -82,6 +112,21 @@ def browse(url: str, *args: str) -> tuple[str, list[str]]:
         shutil.rmtree(profile, ignore_errors=True)
     console = [line for line in proc.stderr.splitlines() if ":CONSOLE" in line]
     return proc.stdout, console
+
+
+def test_the_recorder_sees_a_page_that_fetches(tmp_path):
+    """Positive control for `hits == []` below: the same recorder and browser call, on a page holding the
+    same hostile texts unescaped (no Content-Security-Policy), record the requests those texts make."""
+    with recording_server() as (url, hits):
+        page = tmp_path / "fetches.html"
+        body = "\n".join(hostile_texts(url))
+        page.write_text(f"<!doctype html><html><head><title>control</title></head><body>{body}"
+                        f"<p><img src=\"{url}/plain.png\" alt=\"\"></p></body></html>", encoding="utf-8")
+        dom, _ = browse(page.as_uri(), "--dump-dom")
+        seen = list(hits)
+    assert "</html>" in dom
+    # the image, script, stylesheet and frame the texts point at, and the plain image
+    assert {"/img.png", "/s.js", "/c.css", "/frame", "/plain.png"} <= set(seen), seen
 
 
 def test_page_renders_without_running_injected_code_or_fetching(hostile_run, server):
@@ -172,3 +217,18 @@ def test_page_prints(hostile_run):
     _, console = browse((hostile_run / "report.html").as_uri(), f"--print-to-pdf={pdf}", "--no-pdf-header-footer")
     assert pdf.read_bytes()[:5] == b"%PDF-" and pdf.stat().st_size > 10_000
     assert console == []
+
+
+@pytest.mark.parametrize("ci", ["true", "TRUE", "1", None, "", "false"])
+def test_a_missing_browser_fails_in_ci_and_skips_elsewhere(monkeypatch, ci):
+    """With no browser found: under CI=true the browser checks fail (pytest's Failed), otherwise they skip."""
+    monkeypatch.setattr(sys.modules[__name__], "CHROMIUM", None)
+    if ci is None:
+        monkeypatch.delenv("CI", raising=False)
+    else:
+        monkeypatch.setenv("CI", ci)
+    expected = pytest.fail.Exception if ci in ("true", "TRUE", "1") else pytest.skip.Exception
+    with pytest.raises(expected) as caught:
+        browse("about:blank", "--dump-dom")
+    assert type(caught.value) is expected  # Failed and Skipped are not subclasses of each other
+    assert NO_BROWSER in str(caught.value)
