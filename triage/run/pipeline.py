@@ -39,6 +39,7 @@ from triage.run.analysis import (
     search_share,
 )
 from triage.run.metrics import CorpusStats, sentence_scores
+from triage.run.signature import run_signature
 from triage.run.verdicts import COMPARED, FAILED, VERDICTS, decide, matches_any
 from triage.scoring.scorer import ScoreRequest, TargetScore, score_requests, source_problem
 from triage.settings import DecoderSettings
@@ -470,6 +471,7 @@ def _summary(tally: Tally, buckets, settings, options, devset, model, model_info
         },
         "settings": settings.to_dict(),
         "objective": settings.signature(),
+        "signature": run_signature(settings, options, sig),  # the whole run: objective, version, rules, metric
         "options": {
             "metric": options.metric,
             "below": options.below,
