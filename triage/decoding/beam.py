@@ -199,6 +199,47 @@ def beam_search(model: SequenceModel, settings: DecoderSettings, source_ids: Seq
     return out
 
 
+# ---------------------------------------------------------------------------------- reference tracking
+class _Tracking:
+    """Where each source's reference leaves the search (one per chunk, greedy and beam alike).
+
+    ``refs[i]`` is the reference as the decoder would emit it (end token included); a source is
+    tracked until its reference is lost, completed or cut by the search stopping. A reference
+    longer than the length limit is lost before the search starts.
+    """
+
+    def __init__(self, refs: list[list[int]], eos: list[int], end_id: int, limit: int):
+        self.refs = [_reference_with_end(r, eos, end_id) for r in refs]
+        self.losses: list[LossPoint | None] = [None] * len(refs)
+        self.live = [True] * len(refs)
+        for i, fr in enumerate(self.refs):
+            if len(fr) > limit:
+                self.lose(i, limit + 1, None, "length limit")
+
+    def lose(self, i: int, step: int, rank: int | None, reason: str) -> None:
+        self.losses[i] = LossPoint(step=step, rank=rank, reason=reason)
+        self.live[i] = False
+
+    def complete(self, i: int) -> None:
+        self.live[i] = False
+
+    def lose_at(self, i: int, step: int, values: torch.Tensor, index: int) -> None:
+        """Lost at `step`: ranked among `values` by its candidate `index` (1 + those strictly higher)."""
+        val = values[index]
+        rank = 1 + int((values > val).sum())
+        self.lose(i, step, rank, "blocked by rule" if torch.isneginf(val) else "pruned")
+
+    def attach(self, hyps: list[Hypothesis]) -> list[Hypothesis]:
+        for h, loss in zip(hyps, self.losses, strict=True):
+            h.loss = loss
+            h.reference_kept = loss is None
+        return hyps
+
+
+def _tracking(refs: list[list[int]] | None, model: SequenceModel, eos: list[int], limit: int) -> _Tracking | None:
+    return None if refs is None else _Tracking(refs, eos, int(model.end_id), limit)
+
+
 # ---------------------------------------------------------------------------------- greedy
 @torch.inference_mode()
 def _greedy_chunk(model: SequenceModel, settings: DecoderSettings, sources: list[list[int]],
@@ -215,17 +256,7 @@ def _greedy_chunk(model: SequenceModel, settings: DecoderSettings, sources: list
     sums = torch.zeros(n, dtype=torch.float32)
     active = torch.arange(n)
     procs = build_processors(model, settings, src)
-
-    full_refs = None
-    losses: list[LossPoint | None] = [None] * n
-    tracking = [False] * n
-    if refs is not None:
-        full_refs = [_reference_with_end(r, eos, model.end_id) for r in refs]
-        for i, fr in enumerate(full_refs):
-            if len(fr) > limit:
-                losses[i] = LossPoint(step=limit + 1, rank=None, reason="length limit")
-            else:
-                tracking[i] = True
+    track = _tracking(refs, model, eos, limit)
 
     for t in range(limit):
         if len(active) == 0:
@@ -241,16 +272,12 @@ def _greedy_chunk(model: SequenceModel, settings: DecoderSettings, sources: list
         for row, i in enumerate(active.tolist()):
             tokens[i].append(int(best[row]))
             lps[i].append(float(picked[row]))
-            if full_refs is not None and tracking[i]:
-                want = full_refs[i][t]
+            if track is not None and track.live[i]:
+                want = track.refs[i][t]
                 if int(best[row]) != want:
-                    val = lp[row, want]
-                    rank = 1 + int((lp[row] > val).sum())
-                    reason = "blocked by rule" if torch.isneginf(val) else "pruned"
-                    losses[i] = LossPoint(step=t + 1, rank=rank, reason=reason)
-                    tracking[i] = False
-                elif t == len(full_refs[i]) - 1:
-                    tracking[i] = False  # the reference is the output
+                    track.lose_at(i, t + 1, lp[row], want)
+                elif t == len(track.refs[i]) - 1:
+                    track.complete(i)  # the reference is the output
         keep = ~torch.isin(best, eos_t)
         if not bool(keep.all()):
             rows = torch.nonzero(keep).squeeze(1)
@@ -259,14 +286,60 @@ def _greedy_chunk(model: SequenceModel, settings: DecoderSettings, sources: list
                 state, cache = model.select(state, cache, rows)
                 procs = build_processors(model, settings, src[active])
     out = [_hypothesis(settings, tokens[i], lps[i], float(sums[i]), eos) for i in range(n)]
-    if refs is not None:
-        for i, h in enumerate(out):
-            h.loss = losses[i]
-            h.reference_kept = losses[i] is None
-    return out
+    return out if track is None else track.attach(out)
 
 
 # ---------------------------------------------------------------------------------- beam
+@dataclass
+class _Beams:
+    """The K running beams and the finished set of every source of a chunk (tensors [n, K, ...])."""
+
+    run_tok: torch.Tensor    # [n, K, limit] tokens of each running beam
+    run_lp: torch.Tensor     # [n, K, limit] their log-probs
+    run_score: torch.Tensor  # [n, K] summed log-prob (no penalty)
+    fin_tok: torch.Tensor    # finished set: tokens, log-probs, sum, length, penalized score, filled
+    fin_lp: torch.Tensor
+    fin_sum: torch.Tensor
+    fin_len: torch.Tensor
+    fin_score: torch.Tensor
+    fin_flag: torch.Tensor
+    open_: torch.Tensor      # [n] transformers' is_early_stop_heuristic_unsatisfied
+
+    @classmethod
+    def start(cls, n: int, K: int, limit: int) -> _Beams:
+        run_score = torch.zeros((n, K), dtype=torch.float32)
+        run_score[:, 1:] = PLACEHOLDER  # one live beam at the start (point 2)
+        return cls(
+            run_tok=torch.zeros((n, K, limit), dtype=torch.long),
+            run_lp=torch.zeros((n, K, limit), dtype=torch.float32),
+            run_score=run_score,
+            fin_tok=torch.zeros((n, K, limit), dtype=torch.long),
+            fin_lp=torch.zeros((n, K, limit), dtype=torch.float32),
+            fin_sum=torch.zeros((n, K), dtype=torch.float32),
+            fin_len=torch.zeros((n, K), dtype=torch.long),
+            fin_score=torch.full((n, K), PLACEHOLDER, dtype=torch.float32),
+            fin_flag=torch.zeros((n, K), dtype=torch.bool),
+            open_=torch.ones(n, dtype=torch.bool),
+        )
+
+
+@dataclass
+class _Step:
+    """One step's candidates for the active sources (point 3) and what became of them."""
+
+    acc: torch.Tensor        # [A, K*V] summed log-prob of every extension
+    top_val: torch.Tensor    # [A, keep] the best `keep` of them
+    top_idx: torch.Tensor    # [A, keep] their flat index (beam * V + token)
+    top_beam: torch.Tensor   # [A, keep] the beam each extends
+    hits: torch.Tensor       # [A, keep] it stops (an end token, or the length limit)
+    cand_tok: torch.Tensor   # [A, keep, limit] tokens of each candidate
+    cand_lp: torch.Tensor    # [A, keep, limit] log-probs of each candidate
+    nxt: torch.Tensor = None       # [A, K] candidates that run on
+    sel: torch.Tensor = None       # [A, K] entries of (finished set + candidates) kept as finished
+    did: torch.Tensor = None       # [A, keep] candidates eligible to finish (top K, stopping)
+    full: torch.Tensor = None      # [A, 1] finished set already full under early stopping
+
+
 @torch.inference_mode()
 def _beam_chunk(model: SequenceModel, settings: DecoderSettings, sources: list[list[int]],
                 refs: list[list[int]] | None) -> list[Hypothesis]:
@@ -277,114 +350,44 @@ def _beam_chunk(model: SequenceModel, settings: DecoderSettings, sources: list[l
     eos = _eos_ids(model, settings)
     eos_t = torch.tensor(eos)
     keep = max(2, 1 + len(eos)) * K
-    early = settings.early_stopping
-    hyp_len_is_limit = early == "never" and settings.normalizes and settings.alpha > 0.0
-    top_k_mask = torch.arange(keep) < K
 
     src = _pad_sources(model, sources)
     state = model.encode(sources)
     state, cache = model.select(state, None, torch.arange(n).repeat_interleave(K))
     procs = build_processors(model, settings, src)
-
-    # running beams (per source row, K beams)
-    run_tok = torch.zeros((n, K, limit), dtype=torch.long)
-    run_lp = torch.zeros((n, K, limit), dtype=torch.float32)
-    run_score = torch.zeros((n, K), dtype=torch.float32)
-    run_score[:, 1:] = PLACEHOLDER
-    # finished set
-    fin_tok = torch.zeros((n, K, limit), dtype=torch.long)
-    fin_lp = torch.zeros((n, K, limit), dtype=torch.float32)
-    fin_sum = torch.zeros((n, K), dtype=torch.float32)
-    fin_len = torch.zeros((n, K), dtype=torch.long)
-    fin_score = torch.full((n, K), PLACEHOLDER, dtype=torch.float32)
-    fin_flag = torch.zeros((n, K), dtype=torch.bool)
-    open_ = torch.ones(n, dtype=torch.bool)  # transformers' is_early_stop_heuristic_unsatisfied
-
-    # reference tracking: beam index holding the reference prefix, -1 when not (or no longer) tracked
-    full_refs = None
-    ref_beam = torch.full((n,), -1, dtype=torch.long)
-    losses: list[LossPoint | None] = [None] * n
-    if refs is not None:
-        full_refs = [_reference_with_end(r, eos, model.end_id) for r in refs]
-        for i, fr in enumerate(full_refs):
-            if len(fr) > limit:
-                losses[i] = LossPoint(step=limit + 1, rank=None, reason="length limit")
-            else:
-                ref_beam[i] = 0
+    beams = _Beams.start(n, K, limit)
+    track = _tracking(refs, model, eos, limit)
+    # beam index holding each source's reference prefix, -1 when not (or no longer) tracked
+    ref_beam = torch.tensor([0 if track is not None and track.live[i] else -1 for i in range(n)], dtype=torch.long)
 
     active = torch.arange(n)
     for t in range(limit):  # t tokens generated so far; this step picks token t+1
         A = len(active)
         prefixes = torch.cat(
-            [torch.full((A * K, 1), int(model.start_id), dtype=torch.long), run_tok[active, :, :t].reshape(A * K, t)],
+            [torch.full((A * K, 1), int(model.start_id), dtype=torch.long),
+             beams.run_tok[active, :, :t].reshape(A * K, t)],
             dim=1,
         )
         lp, cache = model.next_logprobs(state, prefixes, cache)
         lp = apply_rules(procs, prefixes, lp.float()).view(A, K, V)
-        acc = (lp + run_score[active][:, :, None]).reshape(A, K * V)
-        top_val, top_idx = torch.topk(acc, keep, dim=1)
-        top_beam = top_idx // V
-        top_tokv = top_idx % V
-        hits = torch.isin(top_tokv, eos_t)
-        if t + 1 >= limit:
-            hits = torch.ones_like(hits)
-        cand_tok = torch.gather(run_tok[active], 1, top_beam[:, :, None].expand(A, keep, limit)).clone()
-        cand_tok[:, :, t] = top_tokv
-        cand_lp = torch.gather(run_lp[active], 1, top_beam[:, :, None].expand(A, keep, limit)).clone()
-        cand_lp[:, :, t] = torch.gather(lp.reshape(A, K * V), 1, top_idx)
+        step = _candidates(beams, active, lp, t, keep, limit, eos_t)
+        new_run_tok, new_run_lp, new_run_score, beam_src = _next_running(step, K, limit)
+        _update_finished(beams, active, step, settings, t, K, keep, limit)
+        if track is not None:
+            _track_step(t, active, step, beams.open_, ref_beam, track, V)
 
-        # next running beams: best K candidates that did not stop
-        run_val = top_val + hits.to(torch.float32) * PLACEHOLDER
-        nxt = torch.topk(run_val, K, dim=1).indices
-        new_run_tok = torch.gather(cand_tok, 1, nxt[:, :, None].expand(A, K, limit))
-        new_run_lp = torch.gather(cand_lp, 1, nxt[:, :, None].expand(A, K, limit))
-        new_run_score = torch.gather(run_val, 1, nxt)
-        beam_src = torch.gather(top_beam, 1, nxt)
-
-        # finished set: only the top K candidates may enter, scored with the length penalty
-        did = hits & top_k_mask[None, :]
-        f_val = top_val / settings.length_penalty(t + 1)
-        full = fin_flag[active].all(dim=1, keepdim=True) & (early is True)
-        f_val = f_val + full.to(torch.float32) * PLACEHOLDER
-        f_val = f_val + (~open_[active])[:, None].to(torch.float32) * PLACEHOLDER
-        f_val = f_val + (~did).to(torch.float32) * PLACEHOLDER
-        m_score = torch.cat([fin_score[active], f_val], dim=1)
-        sel = torch.topk(m_score, K, dim=1).indices
-        m_tok = torch.cat([fin_tok[active], cand_tok], dim=1)
-        m_lp = torch.cat([fin_lp[active], cand_lp], dim=1)
-        m_sum = torch.cat([fin_sum[active], top_val], dim=1)
-        m_len = torch.cat([fin_len[active], torch.full((A, keep), t + 1, dtype=torch.long)], dim=1)
-        m_flag = torch.cat([fin_flag[active], did], dim=1)
-        fin_score[active] = torch.gather(m_score, 1, sel)
-        fin_tok[active] = torch.gather(m_tok, 1, sel[:, :, None].expand(A, K, limit))
-        fin_lp[active] = torch.gather(m_lp, 1, sel[:, :, None].expand(A, K, limit))
-        fin_sum[active] = torch.gather(m_sum, 1, sel)
-        fin_len[active] = torch.gather(m_len, 1, sel)
-        fin_flag[active] = torch.gather(m_flag, 1, sel)
-
-        if full_refs is not None:
-            _track_step(t, active, acc, top_idx, nxt, sel, did, full, open_, ref_beam, full_refs, losses, K, V)
-
-        run_tok[active] = new_run_tok
-        run_lp[active] = new_run_lp
-        run_score[active] = new_run_score
+        beams.run_tok[active] = new_run_tok
+        beams.run_lp[active] = new_run_lp
+        beams.run_score[active] = new_run_score
         if t + 1 >= limit:
             break
 
-        # stopping test of each source (transformers' _check_early_stop_heuristic)
-        denom = settings.length_penalty(limit if hyp_len_is_limit else t + 1)
-        best_possible = run_score[active][:, :1] / denom
-        worst = torch.where(fin_flag[active], fin_score[active].min(dim=1, keepdim=True).values,
-                            torch.tensor(PLACEHOLDER))
-        open_[active] = open_[active] & (best_possible > worst).any(dim=1)
-        done = ~open_[active]
-        if early is True:
-            done = done | fin_flag[active].all(dim=1)
-        if full_refs is not None:
+        done = _stopped(beams, active, settings, t, limit)
+        if track is not None:
             for row in torch.nonzero(done).squeeze(1).tolist():
                 i = int(active[row])
                 if ref_beam[i] >= 0:
-                    losses[i] = LossPoint(step=t + 2, rank=None, reason="search stopped")
+                    track.lose(i, t + 2, None, "search stopped")
                     ref_beam[i] = -1
         flat = (torch.arange(A)[:, None] * K + beam_src).reshape(-1)
         if bool(done.any()):
@@ -396,49 +399,112 @@ def _beam_chunk(model: SequenceModel, settings: DecoderSettings, sources: list[l
             procs = build_processors(model, settings, src[active])
         state, cache = model.select(state, cache, flat)
 
-    out: list[Hypothesis] = []
-    for i in range(n):
-        L = int(fin_len[i, 0])
-        toks = fin_tok[i, 0, :L].tolist()
-        h = _hypothesis(settings, toks, fin_lp[i, 0, :L].tolist(), float(fin_sum[i, 0]), eos)
-        h.extra["search_score"] = float(fin_score[i, 0])
-        if refs is not None:
-            h.loss = losses[i]
-            h.reference_kept = losses[i] is None
-        out.append(h)
-    return out
+    out = [_best_finished(beams, settings, i, eos) for i in range(n)]
+    return out if track is None else track.attach(out)
 
 
-def _track_step(t: int, active: torch.Tensor, acc: torch.Tensor, top_idx: torch.Tensor, nxt: torch.Tensor,
-                sel: torch.Tensor, did: torch.Tensor, full: torch.Tensor, open_: torch.Tensor,
-                ref_beam: torch.Tensor, full_refs: list[list[int]], losses: list[LossPoint | None],
-                K: int, V: int) -> None:
-    """Follow the reference prefix through one step (see LossPoint for the definitions)."""
+def _candidates(beams: _Beams, active: torch.Tensor, lp: torch.Tensor, t: int, keep: int, limit: int,
+                eos_t: torch.Tensor) -> _Step:
+    """The best `keep` extensions of the active sources' beams by summed log-prob (point 3)."""
+    A, K, V = lp.shape
+    acc = (lp + beams.run_score[active][:, :, None]).reshape(A, K * V)
+    top_val, top_idx = torch.topk(acc, keep, dim=1)
+    top_beam = top_idx // V
+    top_tokv = top_idx % V
+    hits = torch.isin(top_tokv, eos_t)
+    if t + 1 >= limit:
+        hits = torch.ones_like(hits)  # the length limit stops every candidate (point 5)
+    cand_tok = torch.gather(beams.run_tok[active], 1, top_beam[:, :, None].expand(A, keep, limit)).clone()
+    cand_tok[:, :, t] = top_tokv
+    cand_lp = torch.gather(beams.run_lp[active], 1, top_beam[:, :, None].expand(A, keep, limit)).clone()
+    cand_lp[:, :, t] = torch.gather(lp.reshape(A, K * V), 1, top_idx)
+    return _Step(acc, top_val, top_idx, top_beam, hits, cand_tok, cand_lp)
+
+
+def _next_running(step: _Step, K: int, limit: int):
+    """The next running beams: the best K candidates that did not stop."""
+    A = step.top_val.shape[0]
+    run_val = step.top_val + step.hits.to(torch.float32) * PLACEHOLDER
+    step.nxt = nxt = torch.topk(run_val, K, dim=1).indices
+    new_run_tok = torch.gather(step.cand_tok, 1, nxt[:, :, None].expand(A, K, limit))
+    new_run_lp = torch.gather(step.cand_lp, 1, nxt[:, :, None].expand(A, K, limit))
+    new_run_score = torch.gather(run_val, 1, nxt)
+    beam_src = torch.gather(step.top_beam, 1, nxt)
+    return new_run_tok, new_run_lp, new_run_score, beam_src
+
+
+def _update_finished(beams: _Beams, active: torch.Tensor, step: _Step, settings: DecoderSettings, t: int,
+                     K: int, keep: int, limit: int) -> None:
+    """Only the top K candidates may enter the finished set, scored with the length penalty (point 4)."""
+    A = len(active)
+    step.did = did = step.hits & (torch.arange(keep) < K)[None, :]
+    f_val = step.top_val / settings.length_penalty(t + 1)
+    step.full = full = beams.fin_flag[active].all(dim=1, keepdim=True) & (settings.early_stopping is True)
+    f_val = f_val + full.to(torch.float32) * PLACEHOLDER
+    f_val = f_val + (~beams.open_[active])[:, None].to(torch.float32) * PLACEHOLDER
+    f_val = f_val + (~did).to(torch.float32) * PLACEHOLDER
+    m_score = torch.cat([beams.fin_score[active], f_val], dim=1)
+    step.sel = sel = torch.topk(m_score, K, dim=1).indices
+    m_tok = torch.cat([beams.fin_tok[active], step.cand_tok], dim=1)
+    m_lp = torch.cat([beams.fin_lp[active], step.cand_lp], dim=1)
+    m_sum = torch.cat([beams.fin_sum[active], step.top_val], dim=1)
+    m_len = torch.cat([beams.fin_len[active], torch.full((A, keep), t + 1, dtype=torch.long)], dim=1)
+    m_flag = torch.cat([beams.fin_flag[active], did], dim=1)
+    beams.fin_score[active] = torch.gather(m_score, 1, sel)
+    beams.fin_tok[active] = torch.gather(m_tok, 1, sel[:, :, None].expand(A, K, limit))
+    beams.fin_lp[active] = torch.gather(m_lp, 1, sel[:, :, None].expand(A, K, limit))
+    beams.fin_sum[active] = torch.gather(m_sum, 1, sel)
+    beams.fin_len[active] = torch.gather(m_len, 1, sel)
+    beams.fin_flag[active] = torch.gather(m_flag, 1, sel)
+
+
+def _stopped(beams: _Beams, active: torch.Tensor, settings: DecoderSettings, t: int, limit: int) -> torch.Tensor:
+    """Which active sources stop after this step (point 6; transformers' _check_early_stop_heuristic)."""
+    early = settings.early_stopping
+    hyp_len_is_limit = early == "never" and settings.normalizes and settings.alpha > 0.0
+    denom = settings.length_penalty(limit if hyp_len_is_limit else t + 1)
+    best_possible = beams.run_score[active][:, :1] / denom
+    worst = torch.where(beams.fin_flag[active], beams.fin_score[active].min(dim=1, keepdim=True).values,
+                        torch.tensor(PLACEHOLDER))
+    beams.open_[active] = beams.open_[active] & (best_possible > worst).any(dim=1)
+    done = ~beams.open_[active]
+    if early is True:
+        done = done | beams.fin_flag[active].all(dim=1)
+    return done
+
+
+def _best_finished(beams: _Beams, settings: DecoderSettings, i: int, eos: list[int]) -> Hypothesis:
+    """The returned output of source i: the best of its finished set (point 7)."""
+    L = int(beams.fin_len[i, 0])
+    toks = beams.fin_tok[i, 0, :L].tolist()
+    h = _hypothesis(settings, toks, beams.fin_lp[i, 0, :L].tolist(), float(beams.fin_sum[i, 0]), eos)
+    h.extra["search_score"] = float(beams.fin_score[i, 0])
+    return h
+
+
+def _track_step(t: int, active: torch.Tensor, step: _Step, open_: torch.Tensor, ref_beam: torch.Tensor,
+                track: _Tracking, V: int) -> None:
+    """Follow the reference prefix through one beam step (see LossPoint for the definitions)."""
     for row, i in enumerate(active.tolist()):
         b = int(ref_beam[i])
         if b < 0:
             continue
-        ref = full_refs[i]
+        ref = track.refs[i]
         flat = b * V + ref[t]
-        val = acc[row, flat]
-        rank = 1 + int((acc[row] > val).sum())
-        where = torch.nonzero(top_idx[row] == flat).squeeze(1)
+        where = torch.nonzero(step.top_idx[row] == flat).squeeze(1)
         pos = int(where[0]) if len(where) else -1
-        lost_reason = "blocked by rule" if torch.isneginf(val) else "pruned"
+        ref_beam[i] = -1
         if t == len(ref) - 1:  # the reference's end token
-            entered = pos >= 0 and bool(did[row, pos]) and not bool(full[row, 0]) and bool(open_[i])
-            if entered:
-                ref_beam[i] = -1  # completed: kept
+            if pos >= 0 and bool(step.did[row, pos]) and not bool(step.full[row, 0]) and bool(open_[i]):
+                track.complete(i)
             else:
-                losses[i] = LossPoint(step=t + 1, rank=rank, reason=lost_reason)
-                ref_beam[i] = -1
+                track.lose_at(i, t + 1, step.acc[row], flat)
             continue
-        kept = torch.nonzero(nxt[row] == pos).squeeze(1) if pos >= 0 else torch.empty(0, dtype=torch.long)
+        kept = torch.nonzero(step.nxt[row] == pos).squeeze(1) if pos >= 0 else torch.empty(0, dtype=torch.long)
         if len(kept):
             ref_beam[i] = int(kept[0])
         else:
-            losses[i] = LossPoint(step=t + 1, rank=rank, reason=lost_reason)
-            ref_beam[i] = -1
+            track.lose_at(i, t + 1, step.acc[row], flat)
 
 
 # ---------------------------------------------------------------------------------- widths

@@ -72,6 +72,58 @@ def _bound(settings: DecoderSettings, s: float, t: int, limit: int) -> float:
     return s / max(settings.length_penalty(t + 1), settings.length_penalty(limit))
 
 
+@dataclass
+class _Best:
+    """The best output found so far: its score, tokens, whether it ended, summed log-prob, length."""
+
+    score: float
+    tokens: list[int]
+    finished: bool
+    logprob_sum: float
+    length: int
+
+    def offer(self, score: float, tokens: list[int], finished: bool, total: float, length: int) -> None:
+        if score > self.score:
+            self.score, self.tokens, self.finished, self.logprob_sum, self.length = \
+                score, tokens, finished, total, length
+
+
+def _start(lower_bound: Hypothesis, include_limit_hit: bool) -> _Best:
+    """The beam's output is the first best unless it stopped at the limit and such outputs are excluded."""
+    if lower_bound.finished or include_limit_hit:
+        return _Best(lower_bound.score, list(lower_bound.tokens), lower_bound.finished, lower_bound.logprob_sum,
+                     lower_bound.length)
+    return _Best(-math.inf, [], True, -math.inf, 0)
+
+
+def _expand(settings: DecoderSettings, prefix: tuple[int, ...], s: float, lp: torch.Tensor, eos: list[int],
+            limit: int, include_limit_hit: bool, best: _Best) -> list[tuple[tuple[int, ...], float]]:
+    """Offer the outputs that end after `prefix` (sum s, next-token log-probs lp) and return its
+    children that pass the bound, best first."""
+    t = len(prefix)
+    for e in eos:  # end here
+        total = s + float(lp[e])
+        best.offer(settings.objective(total, t + 1), list(prefix), True, total, t + 1)
+    # continue: children best first; the bound falls with the sum, so stop at the first cut
+    values, order = torch.sort(lp, descending=True)
+    eos_set = set(eos)
+    children: list[tuple[tuple[int, ...], float]] = []
+    for v, c in zip(values.tolist(), order.tolist(), strict=True):
+        if c in eos_set:
+            continue
+        total = s + v
+        if total == -math.inf:
+            break
+        if t + 1 == limit:  # a child here is an output stopped by the length limit
+            if include_limit_hit:
+                best.offer(settings.objective(total, limit), [*prefix, c], False, total, limit)
+            break  # later children have lower sums
+        if _bound(settings, total, t + 1, limit) <= best.score:
+            break
+        children.append(((*prefix, c), total))
+    return children
+
+
 @torch.inference_mode()
 def exact_search(model: SequenceModel, settings: DecoderSettings, source: Sequence[int], *,
                  lower_bound: Hypothesis | None = None, max_nodes: int = 20000, max_seconds: float = 10.0,
@@ -87,18 +139,9 @@ def exact_search(model: SequenceModel, settings: DecoderSettings, source: Sequen
         lower_bound = beam_search(model, settings, [source])[0]
     limit = settings.limit_new_tokens()
     eos = list(settings.eos_token_ids) or [int(model.end_id)]
-    eos_set = set(eos)
-    src = torch.tensor([source], dtype=torch.long)
     state = model.encode([source])
-    procs = build_processors(model, settings, src)
-
-    beam_score = lower_bound.score
-    if lower_bound.finished or include_limit_hit:
-        best_score = lower_bound.score
-        best = (list(lower_bound.tokens), lower_bound.finished, lower_bound.logprob_sum, lower_bound.length)
-    else:
-        best_score = -math.inf
-        best = ([], True, -math.inf, 0)
+    procs = build_processors(model, settings, torch.tensor([source], dtype=torch.long))
+    best = _start(lower_bound, include_limit_hit)
 
     def score_prefixes(prefixes: list[tuple[int, ...]]) -> list[torch.Tensor]:
         """Rule-processed next-token log-probs after each prefix (all of one length), one model call."""
@@ -118,35 +161,9 @@ def exact_search(model: SequenceModel, settings: DecoderSettings, source: Sequen
             status = BUDGET
             break
         prefix, s, lp = stack.pop()
-        t = len(prefix)
-        if _bound(settings, s, t, limit) <= best_score:
+        if _bound(settings, s, len(prefix), limit) <= best.score:
             continue  # the best score rose since this prefix was queued
-        # end here
-        for e in eos:
-            total = s + float(lp[e])
-            score = settings.objective(total, t + 1)
-            if score > best_score:
-                best_score = score
-                best = (list(prefix), True, total, t + 1)
-        # continue: children best first; the bound falls with the sum, so stop at the first cut
-        values, order = torch.sort(lp, descending=True)
-        children: list[tuple[tuple[int, ...], float]] = []
-        for v, c in zip(values.tolist(), order.tolist(), strict=True):
-            if c in eos_set:
-                continue
-            total = s + v
-            if total == -math.inf:
-                break
-            if t + 1 == limit:  # a child here is an output stopped by the length limit
-                if include_limit_hit:
-                    score = settings.objective(total, limit)
-                    if score > best_score:
-                        best_score = score
-                        best = ([*prefix, c], False, total, limit)
-                break  # later children have lower sums
-            if _bound(settings, total, t + 1, limit) <= best_score:
-                break
-            children.append(((*prefix, c), total))
+        children = _expand(settings, prefix, s, lp, eos, limit, include_limit_hit, best)
         if not children:
             continue
         if nodes + len(children) > max_nodes:
@@ -159,11 +176,12 @@ def exact_search(model: SequenceModel, settings: DecoderSettings, source: Sequen
         nodes += len(children)
         stack.extend((p, tot, vec) for (p, tot), vec in zip(reversed(children), reversed(vectors), strict=True))
 
-    tokens, finished, total, length = best
+    beats = best.score > lower_bound.score and (best.tokens != list(lower_bound.tokens)
+                                                or best.finished != lower_bound.finished)
     return ExactResult(
-        status=status, best_tokens=tokens, best_score=best_score, nodes=nodes, best_finished=finished,
-        best_logprob_sum=total, best_length=length, seconds=time.monotonic() - started,
-        beats_beam=best_score > beam_score and (tokens != list(lower_bound.tokens) or finished != lower_bound.finished),
+        status=status, best_tokens=best.tokens, best_score=best.score, nodes=nodes, best_finished=best.finished,
+        best_logprob_sum=best.logprob_sum, best_length=best.length, seconds=time.monotonic() - started,
+        beats_beam=beats,
     )
 
 
