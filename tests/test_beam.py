@@ -5,7 +5,9 @@ Outside sources:
   `sequences_scores` (beam search) and `compute_transition_scores` (greedy);
 - a LogitsProcessor handed to generate that records the running beams transformers itself
   keeps at each step (the tracking tests check our loss points against that record);
-- teacher-forced log-probs from the transformers model's forward pass.
+- teacher-forced log-probs from the transformers model's forward pass;
+- the tokenizer's own padding (transformers' `tokenizer(..., padding=True, return_tensors="pt")`)
+  for every batch handed to the transformers model directly.
 """
 
 from __future__ import annotations
@@ -18,7 +20,7 @@ import torch
 from transformers import LogitsProcessor, LogitsProcessorList
 
 sys.path.insert(0, str(Path(__file__).parent))
-from tinymodels import END, make_wrapped_marian, random_sources  # noqa: E402
+from tinymodels import END, WRAPPED_VOCAB, make_tokenizer, make_wrapped_marian, random_sources  # noqa: E402
 
 from triage.decoding.beam import beam_search, smallest_width_keeping  # noqa: E402
 from triage.settings import DecoderSettings  # noqa: E402
@@ -36,6 +38,24 @@ def marian(request):
     return model, random_sources(12, seed=request.param + 10)
 
 
+_TOKENIZER = make_tokenizer([f"w{i}" for i in range(3, WRAPPED_VOCAB)], add_end=False)  # make_wrapped_marian's
+
+
+def padded(sources) -> tuple[torch.Tensor, torch.Tensor]:
+    """(input_ids, attention_mask) for id sources, padded by the tokenizer itself (transformers' padding)."""
+    texts = [" ".join(_TOKENIZER.convert_ids_to_tokens(src)) for src in sources]
+    enc = _TOKENIZER(texts, padding=True, return_tensors="pt")
+    for row, mask, src in zip(enc.input_ids, enc.attention_mask, sources, strict=True):
+        assert row[mask.bool()].tolist() == list(src)  # the texts stand for exactly these ids
+    return enc.input_ids, enc.attention_mask
+
+
+def power_objective(logprob_sum: float, n: int, alpha: float) -> float:
+    """transformers' beam score (its docs: sum of log-probs divided by length ** length_penalty), here
+    checked against generate's sequences_scores in test_matches_generate_over_widths_penalties_and_early_stopping."""
+    return logprob_sum / n ** alpha
+
+
 def base_settings(model) -> DecoderSettings:
     return DecoderSettings.from_generation_config(model.model.generation_config, max_new_tokens=LIMIT)
 
@@ -47,7 +67,7 @@ def generate(model, settings: DecoderSettings, sources, processor=None, logits=F
     gc.return_dict_in_generate = True
     gc.output_scores = True
     gc.output_logits = logits
-    ids, mask = model._pad(sources)
+    ids, mask = padded(sources)
     extra = {"logits_processor": LogitsProcessorList([processor])} if processor is not None else {}
     with torch.no_grad():
         out = hf.generate(input_ids=ids, attention_mask=mask, generation_config=gc, **extra)
@@ -152,7 +172,7 @@ def test_width_one_is_greedy_decoding():
     sources = random_sources(6, seed=13)
     s = base_settings(model).replace(beam=1)
     got = beam_search(model, s, sources)
-    ids, mask = model._pad(sources)
+    ids, mask = padded(sources)
     for i, h in enumerate(got):
         prefix = [model.start_id]
         total = 0.0
@@ -171,8 +191,9 @@ def test_width_one_is_greedy_decoding():
 
 
 def test_objective_gnmt_uses_its_divisor():
-    # gnmt has no counterpart in generate; the score must be the settings' objective of the
-    # emitted tokens' summed log-probs, and at alpha 0 gnmt, power and none decode the same
+    # gnmt (Wu et al. 2016, eq. 14, from memory: ((5 + len) / 6) ** alpha) has no counterpart in generate;
+    # the score must be that objective of the emitted tokens' summed log-probs, and at alpha 0 gnmt, power
+    # and none decode the same
     model = make_wrapped_marian(0)
     sources = random_sources(6, seed=10)
     base = base_settings(model).replace(beam=4)
@@ -196,6 +217,12 @@ class RunningBeams(LogitsProcessor):
         return scores
 
 
+def dropped_after(rec: RunningBeams, i: int, K: int, full: list[int]) -> int | None:
+    """The first step t after which transformers' running beams of source i lack full[:t] (None: never)."""
+    return next((t for t in range(1, len(full)) if t < len(rec.steps)
+                 and full[:t] not in [r[1:].tolist() for r in rec.steps[t][i * K: (i + 1) * K]]), None)
+
+
 def test_tracking_agrees_with_the_beams_transformers_keeps():
     model = make_wrapped_marian(4)
     sources = random_sources(12, seed=14)
@@ -207,44 +234,84 @@ def test_tracking_agrees_with_the_beams_transformers_keeps():
     got = beam_search(model, s, sources, track=refs)
     rec = RunningBeams()
     generate(model, s, sources, processor=rec)
-    n_lost = n_kept = 0
+    n_lost = n_kept = n_dropped_seen = 0
     steps = set()
     for i, (h, ref) in enumerate(zip(got, refs, strict=True)):
         def rows(step: int, i: int = i) -> list[list[int]]:
             return [r[1:].tolist() for r in rec.steps[step - 1][i * K: (i + 1) * K]]
 
+        full = ref + [END]
+        # counted apart from triage: the first step after which transformers' running beams lack the prefix
+        gone = dropped_after(rec, i, K, full)
         if h.tokens == ref and h.finished:
             assert h.reference_kept and h.loss is None
         if h.reference_kept:
             n_kept += 1
+            assert gone is None  # transformers kept every proper prefix of the reference
             continue
         n_lost += 1
         lp = h.loss
         steps.add(lp.step)
-        assert lp.reason == "pruned"
+        assert lp.reason == "pruned" and lp.step == gone
         assert lp.rank > K  # among the best K candidates it would have been kept
-        full = ref + [END]
         assert full[: lp.step - 1] in rows(lp.step)  # transformers had the prefix before the step
         if lp.step <= len(ref) and lp.step < len(rec.steps):
             assert full[: lp.step] not in rows(lp.step + 1)  # and dropped it after
+            n_dropped_seen += 1
+    # the rows skipped above as kept are exactly those transformers' beams never dropped
+    assert n_kept == sum(dropped_after(rec, i, K, r + [END]) is None for i, r in enumerate(refs))
+    # every lost row was dropped before its end token and before the last step, so "dropped it after" ran
+    assert n_dropped_seen == n_lost
     assert n_lost >= 1 and n_kept >= 1 and len(steps) >= 2
 
 
 def test_kept_reference_never_beats_the_output():
-    model = make_wrapped_marian(3)
-    sources = random_sources(12, seed=13)
-    s = base_settings(model).replace(beam=4, alpha=0.7)
-    refs = [h.tokens for h in beam_search(model, s.replace(beam=2), sources)]
+    """References = width-2 outputs, tracked at width 4. A kept reference scores no higher than the width-4
+    output; every reference that was not kept is accounted for, against counts computed apart from triage:
+    a reference that (with its end token) is longer than the limit, one transformers' own running beams
+    dropped (RunningBeams), and one still in those beams when the search stopped."""
+    model = make_wrapped_marian(4)
+    sources = random_sources(24, seed=14)
+    K, alpha = 4, 0.7
+    s = base_settings(model).replace(beam=K, alpha=alpha)
+    narrow = generate(model, s.replace(beam=2), sources)  # transformers' own width-2 outputs
+    refs = [ids[:-1] if ids[-1] == END else ids for ids, _ in narrow]
     got = beam_search(model, s, sources, track=refs)
-    ids, mask = model._pad(sources)
+    rec = RunningBeams()
+    tx_out = generate(model, s, sources, processor=rec)
+    ids, mask = padded(sources)
+    too_long, dropped, stopped, kept = [], [], [], []
     for i, (h, ref) in enumerate(zip(got, refs, strict=True)):
+        full = ref + [END]
+        gone = dropped_after(rec, i, K, full)
+        if tx_out[i][0] == full:
+            assert h.reference_kept  # transformers' own width-4 output is the reference
         if not h.reference_kept:
+            if len(full) > LIMIT:  # the width-2 output stopped at the limit: ref + end cannot be generated
+                too_long.append(i)
+                assert (h.loss.reason, h.loss.step, h.loss.rank) == ("length limit", LIMIT + 1, None)
+            elif gone is not None:
+                dropped.append(i)
+                assert (h.loss.reason, h.loss.step) == ("pruned", gone) and h.loss.rank > K
+            else:
+                stopped.append(i)
+                assert h.loss.reason == "search stopped" and h.loss.step == len(full)
             continue
+        kept.append(i)
+        assert gone is None
         dec = torch.tensor([[model.start_id, *ref]])
         with torch.no_grad():
             logits = model.model(input_ids=ids[i: i + 1], attention_mask=mask[i: i + 1], decoder_input_ids=dec).logits
         lp = torch.log_softmax(logits[0], dim=-1).gather(-1, torch.tensor([*ref, END])[:, None]).sum()
-        assert h.score >= s.objective(float(lp), len(ref) + 1) - 1e-4
+        assert h.score >= power_objective(float(lp), len(ref) + 1, alpha) - 1e-4
+    # the skipped rows, counted apart from triage: transformers' width-2 outputs that did not end (too long
+    # to end within the limit), and references transformers' width-4 beams dropped; the rest kept or stopped
+    assert too_long == [i for i, (ids, _) in enumerate(narrow) if ids[-1] != END]
+    assert dropped == [i for i, r in enumerate(refs) if len(r) + 1 <= LIMIT and dropped_after(rec, i, K, r + [END])]
+    assert len(kept) + len(stopped) == sum(len(r) + 1 <= LIMIT and dropped_after(rec, i, K, r + [END]) is None
+                                           for i, r in enumerate(refs))
+    # this seeded run holds every kind (counted once from its printout): the checks above are not empty
+    assert (len(kept), len(too_long), len(dropped), len(stopped)) == (17, 5, 1, 1)
 
 
 def test_reference_longer_than_the_limit():
