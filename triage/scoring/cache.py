@@ -1,8 +1,10 @@
 """On-disk cache of teacher-forced scores, keyed by model, objective and texts.
 
 A rerun after an interruption, or with another threshold, bucket layout or metric, finds the
-rows it already scored. The key of a row is the sha256 of the model fingerprint, the settings
+rows it already scored. The key of a row is the sha256 of the scoring code's version
+(scorer.SCORING_VERSION, read when the cache is opened), the model fingerprint, the settings
 fingerprint, and the token ids of its source and targets; the value is the row's TargetScores.
+A fix to scoring bumps the version, so no run reuses scores the old code computed.
 SQLite (Python's standard library) keeps each committed batch, so Ctrl-C loses at most the
 batch in flight.
 """
@@ -15,6 +17,7 @@ import math
 import sqlite3
 from pathlib import Path
 
+from triage.scoring import scorer
 from triage.scoring.scorer import ScoreRequest, TargetScore
 
 SCHEMA = "CREATE TABLE IF NOT EXISTS scores (key TEXT PRIMARY KEY, value TEXT NOT NULL)"
@@ -50,7 +53,8 @@ class ScoreCache:
         self.folder.mkdir(parents=True, exist_ok=True)
         self.db = sqlite3.connect(self.folder / "scores.sqlite")
         self.db.execute(SCHEMA)
-        self.prefix = f"{model_fingerprint}|{settings_fingerprint}|".encode()
+        self.scoring_version = scorer.SCORING_VERSION
+        self.prefix = f"scoring={self.scoring_version}|{model_fingerprint}|{settings_fingerprint}|".encode()
         self.hits = 0
         self.misses = 0
 

@@ -34,6 +34,14 @@ from triage.settings import DecoderSettings
 #: most log-probs the rules path holds at once (it keeps whole vocabulary vectors per position)
 RULES_LOGITS_BUDGET = 1 << 26
 
+#: Version of the scoring code's numbers. The score cache is keyed on it, so cached scores are
+#: reused only by the code that computed them. Bump it in the same change whenever scoring can
+#: give different numbers or verdict inputs for the same model, settings and texts: how targets
+#: are planned (end token, length limit), how log-probs are computed or summed, the objective,
+#: how rules block a target, what is skipped and why. Pure speed-ups that keep every number
+#: (tests/test_scoring_speedups.py) need no bump.
+SCORING_VERSION = 1
+
 
 @dataclass
 class TargetScore:
