@@ -1,9 +1,11 @@
 """Exact search and wide beams against brute force over a model whose outputs can be listed.
 
-Outside sources: enumeration of every output of TableModel (tests/tinymodels.py) scored
-with the published objectives (power: sum / len**alpha, transformers' beam search; gnmt:
-sum / ((5 + len) / 6)**alpha, Wu et al. 2016, formula from memory), and teacher-forced
-log-probs from the transformers model's own forward pass.
+Outside sources: enumeration of every output of TableModel (tests/tinymodels.py), each scored
+here, not with triage's objective: the sum of log_softmax of the model's own next-token scores,
+divided by the published length penalties (power: len**alpha, as transformers documents
+length_penalty for beam search; gnmt: ((5 + len) / 6)**alpha, Wu et al. 2016 eq. 14, formula
+from memory; width 1, greedy: the plain sum, common practice), and teacher-forced log-probs
+from the transformers model's own forward pass.
 """
 
 from __future__ import annotations
@@ -20,6 +22,7 @@ from hypothesis import settings as hyp_settings
 from hypothesis import strategies as st
 
 sys.path.insert(0, str(Path(__file__).parent))
+from test_beam import padded  # noqa: E402  (the tokenizer's own padding)
 from tinymodels import END, TableModel, make_wrapped_marian, random_sources  # noqa: E402
 
 from triage.decoding.beam import Hypothesis, beam_search  # noqa: E402
@@ -38,8 +41,21 @@ def table_settings(beam: int, penalty: str, alpha: float, early=False) -> Decode
                            max_new_tokens=LIMIT, eos_token_ids=(1,))
 
 
+def objective(total: float, n: int, beam: int, penalty: str, alpha: float) -> float:
+    """The decoder's objective written out from its published forms, apart from triage's code: the
+    summed log-prob `total` of `n` scored tokens over the length penalty."""
+    if beam == 1 or penalty == "none":
+        return total  # greedy search and no normalization: the plain sum (common practice)
+    if penalty == "power":
+        return total / n ** alpha  # transformers' docs: beam score = sum / length ** length_penalty
+    if penalty == "gnmt":
+        return total / ((5 + n) / (5 + 1)) ** alpha  # Wu et al. 2016, eq. 14 (from memory)
+    raise ValueError(penalty)
+
+
 def brute_force(model: TableModel, settings: DecoderSettings, source: list[int]):
-    """Every output the decoder can return: ended within LIMIT tokens, or LIMIT tokens without end."""
+    """Every output the decoder can return (ended within LIMIT tokens, or LIMIT tokens without end) as
+    (objective, output, summed log-prob), best first."""
     state = model.encode([source])
     others = [t for t in range(model.vocab_size) if t != model.end_id]
     outputs = [p + (model.end_id,) for k in range(LIMIT) for p in itertools.product(others, repeat=k)]
@@ -48,10 +64,10 @@ def brute_force(model: TableModel, settings: DecoderSettings, source: list[int])
     for seq in outputs:
         total = 0.0
         for i, tok in enumerate(seq):
-            lp, _ = model.next_logprobs(state, torch.tensor([[model.start_id, *seq[:i]]]))
-            total += float(lp[0, tok])
+            scores, _ = model.next_logprobs(state, torch.tensor([[model.start_id, *seq[:i]]]))
+            total += float(torch.log_softmax(scores[0].double(), dim=-1)[tok])
         if total > -math.inf:
-            scored.append((settings.objective(total, len(seq)), seq))
+            scored.append((objective(total, len(seq), settings.beam, settings.penalty, settings.alpha), seq, total))
     scored.sort(reverse=True)
     return scored
 
@@ -84,8 +100,7 @@ def test_exact_equals_brute_force(table, penalty, alpha):
             # a worthless lower bound (the worst output) makes the search do all the work
             lb = None
             if lower:
-                worst_score, worst = scored[-1]
-                total = worst_score * s.length_penalty(len(worst))
+                worst_score, worst, total = scored[-1]
                 ended = worst[-1] == END
                 lb = Hypothesis(tokens=list(worst[:-1] if ended else worst), token_logprobs=[0.0] * len(worst),
                                 logprob_sum=total, length=len(worst), score=worst_score, finished=ended)
@@ -149,7 +164,7 @@ def test_exact_on_a_transformers_model(alpha):
     model = make_wrapped_marian(4)
     sources = random_sources(4, seed=14)
     s = DecoderSettings.from_generation_config(model.model.generation_config, max_new_tokens=3, beam=2, alpha=alpha)
-    ids, mask = model._pad(sources)
+    ids, mask = padded(sources)
     for i, src in enumerate(sources):
         r = exact_search(model, s, src)
         assert r.status == PROVEN
@@ -162,7 +177,7 @@ def test_exact_on_a_transformers_model(alpha):
         with torch.no_grad():
             logits = model.model(input_ids=ids[i: i + 1], attention_mask=mask[i: i + 1], decoder_input_ids=dec).logits
         total = torch.log_softmax(logits[0], dim=-1).gather(-1, torch.tensor(out)[:, None]).sum()
-        assert r.best_score == pytest.approx(s.objective(float(total), len(out)), abs=1e-4)
+        assert r.best_score == pytest.approx(objective(float(total), len(out), 2, "power", alpha), abs=1e-4)
 
 
 @hyp_settings(max_examples=300, deadline=None)
@@ -177,4 +192,4 @@ def test_bound_covers_every_completion(s, t, extra, alpha, penalty, data):
     settings = DecoderSettings(beam=2, penalty=penalty, alpha=alpha, max_new_tokens=limit)
     L = data.draw(st.integers(t + 1, limit))
     S = s - data.draw(st.floats(0, 50))
-    assert settings.objective(S, L) <= _bound(settings, s, t, limit) + 1e-9
+    assert objective(S, L, 2, penalty, alpha) <= _bound(settings, s, t, limit) + 1e-9
