@@ -79,7 +79,7 @@ def test_streamed_cli_run_writes_the_files_of_the_in_memory_run(tmp_path, tiny_m
     from triage.models.loading import load_model
     from triage.run.analysis import recommend
     from triage.run.pipeline import TriageOptions, run_triage
-    from triage.studies.sweeps import run_sweeps
+    from triage.studies.runner import run_sweeps
 
     dev = _devset(tmp_path / "dev.csv")
     streamed = tmp_path / "streamed"

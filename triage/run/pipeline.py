@@ -39,6 +39,7 @@ from triage.run.analysis import (
     search_share,
 )
 from triage.run.metrics import CorpusStats, sentence_scores
+from triage.run.progress import bar as _bar
 from triage.run.signature import run_signature
 from triage.run.verdicts import COMPARED, FAILED, VERDICTS, decide, matches_any
 from triage.scoring.scorer import ScoreRequest, TargetScore, score_requests, source_problem
@@ -119,12 +120,6 @@ class Tally:
             self.foreign[rule] = self.foreign.get(rule, 0) + len(lines)
         if part.foreign and self.foreign_line is None:  # steps come in input order: the first step's smallest
             self.foreign_line = min(min(lines) for lines in part.foreign.values())
-
-
-def _bar(total: int | None, desc: str, enabled: bool):
-    from tqdm.auto import tqdm
-
-    return tqdm(total=total, desc=desc, unit="row", disable=not enabled or total == 0, leave=False)
 
 
 class ScoringInterrupted(KeyboardInterrupt):
