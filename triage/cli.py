@@ -130,6 +130,18 @@ def build_parser() -> argparse.ArgumentParser:
                      help="failed rows of each verdict listed in the page (default: as the run did, in run.json)")
     rep.add_argument("--debug", action="store_true", help="show tracebacks")
 
+    cmp = sub.add_parser("compare", help="compare two run folders of one dev set: before and after (no model needed)",
+                         description="Compare two run folders (A before, B after): verdict transitions, buckets, "
+                         "rows fixed and broken, the corpus metric's paired bootstrap, and whether A's "
+                         "recommendation was followed. Writes compare.html and compare.json.")
+    cmp.add_argument("run_a", metavar="RUN_A", help="the run folder before the change")
+    cmp.add_argument("run_b", metavar="RUN_B", help="the run folder after the change")
+    cmp.add_argument("--out", metavar="DIR", help="output folder (default reports/compare-<A>-<B>)")
+    cmp.add_argument("--labels", metavar="A,B", help="names of the two runs on the page (default before,after)")
+    cmp.add_argument("--allow-different-data", action="store_true",
+                     help="compare runs of different dev sets, matching rows by id (the page says so)")
+    cmp.add_argument("--debug", action="store_true", help="show tracebacks")
+
     b = sub.add_parser("bench", help="benchmark scoring against a naive baseline and generate", add_help=False)
     b.add_argument("bench_args", nargs=argparse.REMAINDER)
     return p
@@ -307,6 +319,19 @@ def cmd_report(a: argparse.Namespace) -> int:
     return 0
 
 
+def cmd_compare(a: argparse.Namespace) -> int:
+    from triage.compare import compare_runs, parse_labels, summary_paragraph, write_comparison
+
+    labels = parse_labels(a.labels)
+    out = Path(a.out) if a.out else Path("reports") / f"compare-{Path(a.run_a).name}-{Path(a.run_b).name}"
+    _check_out_dir(out)
+    comparison = compare_runs(a.run_a, a.run_b, labels=labels, allow_different_data=a.allow_different_data)
+    json_path, html_path = write_comparison(comparison, out)
+    print(summary_paragraph(comparison))
+    print(f"wrote {html_path} and {json_path.name}")
+    return 0
+
+
 _STOP_SIGNAL = {"signum": signal.SIGINT}
 
 
@@ -346,6 +371,8 @@ def _main(argv: list[str] | None) -> int:
             return cmd_run(a)
         if a.command == "report":
             return cmd_report(a)
+        if a.command == "compare":
+            return cmd_compare(a)
     except TriageError as exc:
         if debug:
             raise
