@@ -1,6 +1,6 @@
 """A model of your own in triage: a character-level GRU encoder-decoder with attention.
 
-triage talks to any model through one small interface, ``SequenceModel`` (triage/model_api.py).
+triage talks to any model through one small interface, ``SequenceModel`` (triage/models/api.py).
 This file shows the two parts you write to use a model that is not a transformers checkpoint:
 
 1. the network itself, ``CharGRU``: plain torch, it knows nothing about triage;
@@ -72,8 +72,9 @@ class UserModel:
         self.itos = itos
         self.stoi = {s: i for i, s in enumerate(itos)}
         self.vocab_size = len(itos)
-        # the decoder settings the outputs were made with (triage's flags override them); without
-        # this attribute triage assumes greedy search and transformers' default length limit
+        # optional (the DefaultSettings capability): the decoder settings the outputs were made with
+        # (triage's flags override them); without it triage assumes greedy search and a length
+        # limit of max_target_tokens
         self.default_settings = DecoderSettings(
             beam=4, penalty="power", alpha=1.0, max_new_tokens=64,
             eos_token_ids=(END,), decoder_start_token_id=START, pad_token_id=PAD,
@@ -129,8 +130,9 @@ class UserModel:
             logits, h = self.net.step(state["memory"], state["mask"], h, todo[:, t])
         return torch.log_softmax(logits.float(), dim=-1), h
 
-    # -- optional: a faster teacher-forced pass. triage uses it to score references and
-    # outputs when present; without it, it steps through next_logprobs (same numbers).
+    # -- optional (the BatchedForcedScoring capability): a faster teacher-forced pass. triage
+    # uses it to score references and outputs when present; without it, it steps through
+    # next_logprobs (same numbers). The other optional capabilities are in triage/models/api.py.
     @torch.inference_mode()
     def forced_logprobs(self, state, decoder_inputs: torch.Tensor) -> torch.Tensor:
         h, steps = state["h0"], []

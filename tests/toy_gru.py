@@ -4,7 +4,7 @@ On top of the network's logits sits a copy bias: at target position t the source
 (the end token past the source's end) gets `copy_bias` extra, so the random network
 produces noisy copies of its input rather than nothing at all.
 
-It implements triage's SequenceModel interface directly (triage/model_api.py) and is loaded
+It implements triage's SequenceModel interface directly (triage/models/api.py) and is loaded
 with ``--model python:toy_gru:make_model`` (tests/ on the Python path). Characters are the
 tokens; weights are random and seeded, so outputs are nonsense but deterministic.
 """

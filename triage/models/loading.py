@@ -1,7 +1,7 @@
 """Where a model comes from: a transformers checkpoint, or the user's own Python factory.
 
 ``load_model("python:package.module:factory")`` imports the module and calls ``factory()``,
-which must return an object with triage's SequenceModel interface (triage/model_api.py).
+which must return an object with triage's SequenceModel interface (triage/models/api.py).
 The current directory is searched after the usual import path, so a module file beside the
 data works. Anything else is a local transformers checkpoint (hf_backend).
 """
@@ -43,7 +43,7 @@ def check_model(obj: Any, where: str) -> SequenceModel:
     missing += [n for n in REQUIRED_METHODS if not callable(getattr(obj, n, None))]
     if missing:
         raise ModelError(f"the model object ({type(obj).__name__}) lacks {', '.join(missing)}", path=where,
-                         hint="see triage/model_api.py: SequenceModel")
+                         hint="see triage/models/api.py: SequenceModel")
     for name in REQUIRED_INTS:
         value = getattr(obj, name)
         if isinstance(value, bool) or not isinstance(value, int):
