@@ -307,9 +307,9 @@ def test_readable_without_script(run_dir):
     assert controls and "hidden" in controls[0]
     assert all("hidden" not in r["attrs"] for r in page.rows)
     assert "@media print" in html
-    for section in ("decision", "run", "counts", "length", "margin", "rows"):
+    for section in ("decision", "run", "counts", "length", "gap", "rows"):
         assert f'<section id="{section}"' in html
-    order = [html.index(f'<section id="{s}"') for s in ("decision", "run", "counts", "length", "margin", "rows")]
+    order = [html.index(f'<section id="{s}"') for s in ("decision", "run", "counts", "length", "gap", "rows")]
     assert order == sorted(order)
 
 
@@ -411,7 +411,7 @@ def test_far_out_margins_are_named_not_drawn():
     q1, q3 = np.percentile(vals, [25, 75])  # numpy's default (linear) quantiles
     assert below == [-9999.0] and above == [190.0, 4234.2]
     assert all(q1 - 3 * (q3 - q1) <= v <= q3 + 3 * (q3 - q1) for v in inside) and len(inside) == 200
-    svg = str(gap_histogram(vals))
+    svg = str(gap_histogram(vals, ["model"] * len(vals)))
     assert "1 more below -9999" in svg and "2 more above, up to 4234" in svg
 
 

@@ -19,8 +19,9 @@ from triage.errors import InputError, OptionError, TriageError
 
 EPILOG = """\
 verdicts: search = the model prefers the reference (the beam missed it); model = the model prefers
-its wrong output; tie = within --margin; blocked = a decoding rule forbids the reference;
-skipped = the row cannot be scored (reason given). Exit codes: 0 done, 2 bad input or options (or an
+its wrong output; tie = the score gap (reference score minus output score) is within --margin;
+blocked = a decoding rule forbids every reference; skipped = the row cannot be scored, or its output
+breaks a decoding rule (reason given). Exit codes: 0 done, 2 bad input or options (or an
 output folder that cannot be written, or too little memory), 130 interrupted by Ctrl-C (143 SIGTERM, 129
 SIGHUP; previous outputs left intact)."""
 
@@ -89,7 +90,7 @@ def build_parser() -> argparse.ArgumentParser:
     g.add_argument("--below", type=float, metavar="X",
                    help="count a row as failed only if it differs from every reference AND its metric is below X")
     g.add_argument("--margin", type=float, default=None, metavar="M",
-                   help="scores closer than M are a tie (default 1e-4)")
+                   help="tie margin: a score gap (reference score minus output score) within M of 0 is a tie (default 1e-4)")
     g.add_argument("--buckets", default=None, metavar="EDGES",
                    help="lower edges of the length buckets (default 1,11,21,31,41)")
     g.add_argument("--bucket-by", choices=("ref-words", "source-words", "ref-tokens", "source-tokens"),

@@ -34,6 +34,8 @@ LABELS = {
 }
 # left to right in the stacked bars: the search share reads straight off the axis
 BAR_ORDER = ("search", "tie", "model", "blocked", "skipped", "correct")
+# bottom to top in each bar of the score-gap histogram (the compared verdicts)
+GAP_ORDER = ("model", "tie", "search")
 
 
 def _f(x: float) -> str:
@@ -54,7 +56,7 @@ def length_bars(buckets: Sequence[dict[str, Any]], order: Sequence[str] = BAR_OR
     width = left + bar_w + right
     height = top + row_h * len(buckets) + 30
     out = [f'<svg class="chart" viewBox="0 0 {width} {height}" width="{width}" height="{height}" role="img" '
-           f'aria-labelledby="bars-title"><title id="bars-title">Verdicts by sentence length, as shares of each '
+           f'aria-labelledby="bars-title"><title id="bars-title">Verdicts by length, as shares of each '
            f'bucket&#39;s rows</title>']
     # legend
     x = left
@@ -103,6 +105,18 @@ def nice_step(span: float, target: int = 16) -> float:
     return 10 * mag
 
 
+def _bin_layout(vals: Sequence[float], target: int = 16) -> tuple[float, float, int]:
+    """(first lower edge, bin width, number of bins) for finite values: widths are round, 0 is an edge."""
+    lo, hi = min(vals), max(vals)
+    step = nice_step(hi - lo, target) if hi > lo else max(abs(lo) / 10, 0.1)
+    start = math.floor(lo / step) * step
+    return start, step, max(1, math.floor((hi - start) / step) + 1)
+
+
+def _bin_of(v: float, start: float, step: float, n: int) -> int:
+    return min(int((v - start) // step), n - 1)
+
+
 def gap_bins(values: Sequence[float], target: int = 16) -> list[tuple[float, float, int]]:
     """Histogram bins [lo, hi) aligned to multiples of a round width, so that 0 is a bin edge.
 
@@ -111,21 +125,17 @@ def gap_bins(values: Sequence[float], target: int = 16) -> list[tuple[float, flo
     vals = [float(v) for v in values if v is not None and math.isfinite(float(v))]
     if not vals:
         return []
-    lo, hi = min(vals), max(vals)
-    step = nice_step(hi - lo, target) if hi > lo else max(abs(lo) / 10, 0.1)
-    start = math.floor(lo / step) * step
-    n = max(1, math.floor((hi - start) / step) + 1)
+    start, step, n = _bin_layout(vals, target)
     counts = [0] * n
     for v in vals:
-        k = min(int((v - start) // step), n - 1)
-        counts[k] += 1
+        counts[_bin_of(v, start, step, n)] += 1
     return [(start + k * step, start + (k + 1) * step, counts[k]) for k in range(n)]
 
 
 def split_outliers(values: Sequence[float], k: float = 3.0) -> tuple[list[float], list[float], list[float]]:
     """(below, inside, above) Tukey's far fences, Q1 - k*IQR and Q3 + k*IQR (k = 3: "far out").
 
-    A few huge margins (a token the model all but forbids) would squeeze every other bar into one;
+    A few huge score gaps (a token the model all but forbids) would squeeze every other bar into one;
     the chart draws the inside values and names the others in words.
     """
     vals = sorted(float(v) for v in values if v is not None and math.isfinite(float(v)))
@@ -145,12 +155,25 @@ def split_outliers(values: Sequence[float], k: float = 3.0) -> tuple[list[float]
     return [v for v in vals if v < lo], [v for v in vals if lo <= v <= hi], [v for v in vals if v > hi]
 
 
-def gap_histogram(values: Sequence[float]) -> Markup:
-    """Histogram of score_gap = ref_score - out_score: left of 0 the model prefers its output."""
-    below, inside, above = split_outliers(values)
+def gap_histogram(values: Sequence[float], verdicts: Sequence[str], margin: float | None = None) -> Markup:
+    """Histogram of score_gap = ref_score - out_score, each bar split by the rows' own verdicts.
+
+    Left of 0 the model prefers its output, right of 0 the reference; a gap within the tie margin
+    either side of 0 is a tie, so the bars next to 0 can hold ties on both sides. The colours are
+    the verdicts the rows were given, never re-derived from the gap.
+    """
+    pairs = [(float(g), str(v)) for g, v in zip(values, verdicts, strict=True)
+             if g is not None and math.isfinite(float(g))]
+    below, inside, above = split_outliers([g for g, _ in pairs])
     bins = gap_bins(inside)
     if not bins:
         return Markup("")
+    start, step, n = _bin_layout(inside)
+    lo_in, hi_in = inside[0], inside[-1]
+    stacks = [dict.fromkeys(GAP_ORDER, 0) for _ in bins]
+    for g, v in pairs:
+        if lo_in <= g <= hi_in and v in GAP_ORDER:
+            stacks[_bin_of(g, start, step, n)][v] += 1  # the bin gap_bins counts it in
     left, right, plot_w, plot_h, top = 48, 16, 700, 180, 48
     width, height = left + plot_w + right, top + plot_h + 44
     lo, hi = bins[0][0], bins[-1][1]
@@ -169,26 +192,33 @@ def gap_histogram(values: Sequence[float]) -> Markup:
         return top + plot_h - plot_h * c / peak
 
     out = [f'<svg class="chart" viewBox="0 0 {width} {height}" width="{width}" height="{height}" role="img" '
-           f'aria-labelledby="gap-title"><title id="gap-title">Histogram of the score margin, reference score minus '
-           f'output score</title>']
-    # side labels carry the colour meaning in words
-    out.append(f'<rect x="{left}" y="6" width="12" height="12" fill="{COLOURS["model"]}"/>'
-               f'<text x="{left + 16}" y="16" class="lg">below 0: the model prefers its output (model-side)</text>'
-               f'<rect x="{left}" y="24" width="12" height="12" fill="{COLOURS["search"]}"/>'
-               f'<text x="{left + 16}" y="34" class="lg">0 and above: the model prefers the reference '
-               f'(search-side; within the tie margin: tie)</text>')
+           f'aria-labelledby="gap-title"><title id="gap-title">Histogram of the score gap, reference score minus '
+           f'output score, by verdict</title>']
+    # the legend names each colour's verdict and where on the axis it lies
+    tie = "within the tie margin" + (f" ({margin:g})" if margin is not None else "") + " of 0"
+    legend = (("model", "model-side: below 0, beyond the tie margin"), ("tie", f"tie: {tie}"),
+              ("search", "search-side: above 0, beyond the tie margin"))
+    for k, (v, text) in enumerate(legend):
+        y = 6 + 14 * k
+        out.append(f'<rect x="{left}" y="{y - 2}" width="12" height="11" fill="{COLOURS[v]}"/>'
+                   f'<text x="{left + 16}" y="{y + 8}" class="lg">{escape(text)}</text>')
     for t in sorted({0, top_count // 2, top_count}):
         ty = sy(t)
         out.append(f'<line x1="{left}" y1="{_f(ty)}" x2="{left + plot_w}" y2="{_f(ty)}" class="grid"/>'
                    f'<text x="{left - 6}" y="{_f(ty + 4)}" class="tick" text-anchor="end">{t:g}</text>')
-    for a, b, c in bins:
+    for (a, b, c), stack in zip(bins, stacks, strict=True):
         if not c:
             continue
-        kind = "search" if a >= 0 else "model"
         x, w = sx(a), max(sx(b) - sx(a) - 1, 1)
-        tip = f"margin {a:.3g} to {b:.3g}: {c} row{'s' if c != 1 else ''} ({LABELS[kind]})"
-        out.append(f'<rect x="{_f(x)}" y="{_f(sy(c))}" width="{_f(w)}" height="{_f(top + plot_h - sy(c))}" '
-                   f'fill="{COLOURS[kind]}"><title>{escape(tip)}</title></rect>')
+        base = 0
+        for v in GAP_ORDER:
+            k = stack[v]
+            if not k:
+                continue
+            tip = f"score gap {a:.3g} to {b:.3g}: {k} {LABELS[v]} row{'s' if k != 1 else ''} (of {c} in the bar)"
+            out.append(f'<rect x="{_f(x)}" y="{_f(sy(base + k))}" width="{_f(w)}" '
+                       f'height="{_f(sy(base) - sy(base + k))}" fill="{COLOURS[v]}"><title>{escape(tip)}</title></rect>')
+            base += k
         if w >= 7 * len(str(c)):
             out.append(f'<text x="{_f(x + w / 2)}" y="{_f(sy(c) - 3)}" class="tick" text-anchor="middle">{c}</text>')
     # x axis: a few round ticks, 0 always drawn and marked
@@ -203,8 +233,8 @@ def gap_histogram(values: Sequence[float]) -> Markup:
     zx = sx(0.0)
     out.append(f'<line x1="{left}" y1="{top + plot_h}" x2="{left + plot_w}" y2="{top + plot_h}" class="axl"/>'
                f'<line x1="{_f(zx)}" y1="{top - 4}" x2="{_f(zx)}" y2="{top + plot_h}" class="zero"/>')
-    out.append(f'<text x="{left + plot_w / 2}" y="{height - 6}" class="ax" text-anchor="middle">margin = reference '
-               f'score minus output score (rows per bin)</text>')
+    out.append(f'<text x="{left + plot_w / 2}" y="{height - 6}" class="ax" text-anchor="middle">score gap = '
+               f'reference score minus output score (rows per bin)</text>')
     if below:
         out.append(f'<text x="{left + 4}" y="{top + 12}" class="tick">◀ {len(below)} more below {min(below):.4g} '
                    f'(not drawn)</text>')

@@ -49,10 +49,10 @@ SETTINGS_LABELS = [
     ("penalty", "length penalty form"),
     ("alpha", "length penalty alpha"),
     ("early_stopping", "early stopping"),
-    ("max_new_tokens", "most new tokens"),
-    ("max_length", "most tokens (incl. start)"),
-    ("min_length", "fewest tokens"),
-    ("min_new_tokens", "fewest new tokens"),
+    ("max_new_tokens", "length limit (new tokens)"),
+    ("max_length", "length limit (tokens, start included)"),
+    ("min_length", "minimum length (tokens)"),
+    ("min_new_tokens", "minimum length (new tokens)"),
     ("no_repeat_ngram_size", "no repeated n-grams of size"),
     ("encoder_no_repeat_ngram_size", "no n-grams repeated from the source, size"),
     ("repetition_penalty", "repetition penalty"),
@@ -417,7 +417,7 @@ PAGE_ROWS_PER_VERDICT = 1000
 
 class PageRows:
     """What the page shows of a run's rows, gathered part by part, so that a run of any size
-    makes a page of bounded size: the margin (score gap) of every compared row, for the
+    makes a page of bounded size: the score gap and verdict of every compared row, for the
     histogram, and the first `per_verdict` failed rows of each verdict, in input order, with
     their token records. verdicts.csv keeps every row."""
 
@@ -430,7 +430,8 @@ class PageRows:
         self.tokens: dict[str, dict[str, Any]] = {}
         self.wanted: set[str] = set()       # ids of the kept rows
         self.gaps = array("d")
-        self.nonfinite = 0                  # compared rows with an infinite margin
+        self.gap_verdicts = array("b")      # each gap's verdict, as its index in COMPARED
+        self.nonfinite = 0                  # compared rows with an infinite score gap
         self.columns: list[str] = []
 
     def add(self, verdicts: pd.DataFrame, tokens: list[dict[str, Any]]) -> None:
@@ -444,9 +445,11 @@ class PageRows:
         self.columns = self.columns or list(verdicts.columns)
         failed = verdicts[verdicts["verdict"] != "correct"]
         self.failed += len(failed)
-        for gap in failed.loc[failed["verdict"].isin(COMPARED), "score_gap"]:
+        compared = failed[failed["verdict"].isin(COMPARED)]
+        for gap, verdict in zip(compared["score_gap"], compared["verdict"], strict=True):
             if _finite(gap):
                 self.gaps.append(float(gap))
+                self.gap_verdicts.append(COMPARED.index(verdict))
             else:
                 self.nonfinite += 1
         rank = failed.groupby("verdict", sort=False).cumcount() + failed["verdict"].map(
@@ -558,7 +561,9 @@ def render_page(summary: dict[str, Any], page: PageRows, run_info: dict[str, Any
         labels=charts.LABELS, colours=charts.COLOURS, ink=charts.INK,
         action=action, action_text=ACTIONS.get(action, action), action_meaning=ACTION_MEANING.get(action, ""),
         because=rec.get("because", ""), missing=rec.get("missing") or [],
-        bars=charts.length_bars(buckets), histogram=charts.gap_histogram(gaps), n_gaps=len(gaps),
+        bars=charts.length_bars(buckets),
+        histogram=charts.gap_histogram(gaps, [COMPARED[i] for i in page.gap_verdicts], options.get("margin")),
+        n_gaps=len(gaps),
         nonfinite_gaps=nonfinite,
         model_items=_labelled(summary.get("model"), MODEL_LABELS, ("path", "sha256"))[0],
         data_items=_labelled(summary.get("data"), DATA_LABELS, ("path", "sha256"))[0],

@@ -66,4 +66,4 @@ def decide(ref_scores: list[TargetScore], out_score: TargetScore, margin: float)
         return Verdict("search", f"reference outscores output by {diff:.4f}", best_k)
     if diff < -margin:
         return Verdict("model", f"output outscores reference by {-diff:.4f}", best_k)
-    return Verdict("tie", f"scores within the margin {margin:g}", best_k)
+    return Verdict("tie", f"scores within the tie margin {margin:g}", best_k)
