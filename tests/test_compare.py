@@ -352,3 +352,49 @@ def test_compare_page_in_chromium_runs_no_injected_code_and_fetches_nothing(demo
                      r"script-src 'none'", html)
     assert not math.isnan(c["corpus_metric"]["test"]["difference"])
     assert os.path.getsize(out / "compare.html") < 200_000
+
+
+def _copy_with_summary(src: Path, dst: Path, edit) -> Path:
+    if dst.exists():
+        shutil.rmtree(dst)
+    shutil.copytree(src, dst)
+    s = json.loads((dst / "summary.json").read_text())
+    edit(s)
+    (dst / "summary.json").write_text(json.dumps(s))
+    return dst
+
+
+def test_a_new_model_is_what_fix_model_asked_for(demo):
+    """B's summary names other model weights (as a retrained model's would): the follow-up aims at A's
+    model-side rows and calls fix-model followed."""
+    from triage.compare import compare_runs
+
+    a = _copy_with_summary(demo["a"], demo["tmp"] / "fm-a",
+                           lambda s: s["recommendation"].update(action="fix-model"))
+    b = _copy_with_summary(demo["b"], demo["tmp"] / "fm-b", lambda s: s["model"].update(sha256="0" * 64))
+    c = compare_runs(a, b)
+    fu = c.follow_up
+    assert fu.followed is True and fu.target == "model-side"
+    assert [x.what for x in fu.changes] == ["beam", "model"]
+    va, vb = _verdicts(a).set_index("id"), _verdicts(b).set_index("id")
+    model_ids = va.index[va["verdict"] == "model"]
+    # reference: pandas over the two verdicts.csv
+    assert fu.target_rows == len(model_ids)
+    assert fu.now_correct == int((vb.loc[model_ids, "verdict"] == "correct").sum())
+    worse = (pd.to_numeric(vb.loc[model_ids, "chrf"]) < pd.to_numeric(va.loc[model_ids, "chrf"])).sum()
+    assert fu.model_rows_worse == int(worse)
+    assert fu.achieved.startswith(f"Changed the model (caad30736c6d… -> 000000000000…): {fu.now_correct} of "
+                                  f"{len(model_ids)} model-side rows now correct")
+
+
+def test_references_from_verdicts_csv_when_the_data_file_is_gone(demo, compared):
+    from triage.compare import compare_runs
+
+    _, c = compared
+    a = _copy_with_summary(demo["a"], demo["tmp"] / "gone-a", lambda s: s["data"].update(path="/nonexistent.tsv"))
+    got = compare_runs(a, demo["b"]).corpus_metric
+    assert "verdicts.csv" in got.references and "every reference" in c["corpus_metric"]["references"]
+    # one reference per row in the demo: the best reference is every reference, the scores are the same
+    assert got.complete is True and got.note is None
+    assert got.test.score_a == pytest.approx(c["corpus_metric"]["test"]["score_a"], abs=1e-9)
+    assert got.test.p_value == pytest.approx(c["corpus_metric"]["test"]["p_value"], abs=1e-12)
