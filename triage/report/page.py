@@ -19,9 +19,13 @@ from typing import Any
 import pandas as pd
 from markupsafe import Markup
 
+from triage.display import finite as _finite
+from triage.display import fmt_interval, fmt_num, fmt_pct, fmt_value
 from triage.report import charts
 from triage.run.verdicts import COMPARED
 from triage.settings import DecoderSettings
+from triage.studies import SECTIONS, STUDIES
+from triage.studies.common import Section
 
 VERDICT_ORDER = ("search", "model", "tie", "blocked", "skipped", "correct")
 
@@ -69,9 +73,6 @@ MODEL_LABELS = [("path", "model directory"), ("sha256", "sha256 of the model fil
                 ("fingerprint", "fingerprint (sha256 of the weights)"), ("tokenizer", "tokenizer")]
 DATA_LABELS = [("path", "data file"), ("sha256", "sha256 of the data file"), ("format", "format"),
                ("rows", "rows read"), ("outputs", "outputs")]
-SWEEP_KEYS = (("widen", "Wider beams"), ("beam_curve", "Score by beam width"),
-              ("length_penalty", "Other length penalties"), ("where_lost", "Where the beam lost the reference"),
-              ("exact", "Exact search"))
 COLUMN_LABELS = {
     "beam": "beam width", "resolved_share": "search-side rows resolved", "resolved": "resolved rows",
     "corpus_delta": "change in corpus metric", "time_ratio": "decode time (x)", "metric": "metric",
@@ -80,63 +81,7 @@ COLUMN_LABELS = {
 }
 
 
-# ------------------------------------------------------------------------ formatting
-def _finite(x: Any) -> bool:
-    try:
-        return x is not None and not pd.isna(x) and math.isfinite(float(x))
-    except (TypeError, ValueError):
-        return False
-
-
-def fmt_num(x: Any, digits: int = 2) -> str:
-    if x is None or (isinstance(x, float) and math.isnan(x)):
-        return "—"
-    try:
-        if pd.isna(x):
-            return "—"
-    except (TypeError, ValueError):
-        pass
-    if isinstance(x, bool):
-        return "yes" if x else "no"
-    if isinstance(x, int):
-        return str(x)
-    try:
-        v = float(x)
-    except (TypeError, ValueError):
-        return str(x)
-    if math.isinf(v):
-        return "-inf" if v < 0 else "+inf"
-    if v == int(v) and abs(v) < 1e15 and digits == 0:
-        return str(int(v))
-    return f"{v:.{digits}f}"
-
-
-def fmt_pct(x: Any, digits: int = 1) -> str:
-    return f"{float(x) * 100:.{digits}f}%" if _finite(x) else "—"
-
-
-def fmt_interval(iv: Any) -> str:
-    if not iv or len(iv) != 2 or not (_finite(iv[0]) and _finite(iv[1])):
-        return "—"
-    return f"{fmt_pct(iv[0])} – {fmt_pct(iv[1])}"
-
-
-def fmt_value(x: Any) -> str:
-    """Any summary value as short text (generic tables for keys the report does not know)."""
-    if isinstance(x, bool) or x is None:
-        return {True: "yes", False: "no", None: "—"}[x]
-    if isinstance(x, int):
-        return str(x)
-    if isinstance(x, float):
-        return f"{x:.6g}"
-    if isinstance(x, (list, tuple)):
-        return ", ".join(fmt_value(v) for v in x) if all(not isinstance(v, (dict, list)) for v in x) \
-            else json.dumps(x, ensure_ascii=False)
-    if isinstance(x, dict):
-        return json.dumps(x, ensure_ascii=False, default=str)
-    return str(x)
-
-
+# ------------------------------------------------------------------------ formatting (triage.display)
 def _get(d: Any, path: str) -> Any:
     for part in path.split("."):
         if isinstance(d, dict):
@@ -181,143 +126,29 @@ def _cell(key: str, v: Any) -> str:
     return fmt_value(v)
 
 
-# ------------------------------------------------------------------------ sweeps
-def _table(caption: str, spec: list[tuple[str, str, str]], rows: Any) -> dict[str, Any] | None:
-    """spec: (path in the row, column label, kind: int|pct|num|text). Missing values show as a dash."""
-    if not isinstance(rows, list) or not rows:
-        return None
-    fmt = {"int": lambda x: fmt_num(x, 0), "pct": fmt_pct, "num": lambda x: fmt_num(x, 2),
-           "sec": lambda x: fmt_num(x, 4), "text": fmt_value}
-    body = [[fmt[kind](_get(r, path)) for path, _, kind in spec] for r in rows if isinstance(r, dict)]
-    return {"caption": caption, "cols": [label for _, label, _ in spec], "rows": body}
+# ------------------------------------------------------------------------ studies
+def _study_block(key: str, val: Any) -> dict[str, Any]:
+    """A study's block from its view (triage.studies, one module per study); a section of a shape
+    the view cannot read is shown as a plain table."""
+    try:
+        section = SECTIONS[key].from_json(val) if isinstance(val, dict) else val
+        view = STUDIES[key].view(section)
+        block: dict[str, Any] = {"lines": view.lines, "tables": view.tables, "notes": view.notes}
+        if view.chart is not None:
+            block["chart"] = getattr(charts, view.chart.kind)(**view.chart.args)
+        interrupted = bool(getattr(section, "interrupted", False))
+    except (TypeError, ValueError, AttributeError, KeyError):
+        raw = val.to_json() if isinstance(val, Section) else val
+        block = {"lines": [], "tables": [], "notes": [], "generic": generic_table(raw)}
+        interrupted = isinstance(raw, dict) and bool(raw.get("interrupted"))
+    block.update(key=key, title=STUDIES[key].TITLE, interrupted=interrupted)
+    return block
 
 
-def _widen_block(w: dict[str, Any]) -> dict[str, Any]:
-    m = w.get("metric") or "metric"
-    rows = w.get("rows") or {}
-    cur = w.get("current") or {}
-    lines = [
-        f"Failed rows re-decoded with wider beams: {fmt_value(rows.get('redecoded'))} of "
-        f"{fmt_value(rows.get('compared'))} compared rows ({fmt_value(rows.get('search'))} search-side, "
-        f"{fmt_value(rows.get('model'))} model-side){', a seeded sample' if rows.get('sampled') else ''}.",
-        f"Current beam width {fmt_value(w.get('current_beam'))}: {fmt_num(cur.get('seconds_per_row'), 4)} s per row; "
-        f"it reproduces {fmt_pct(cur.get('reproduced_share'))} of the given outputs. Corpus {m} before: "
-        f"{fmt_num(w.get('corpus_before'), 2)}. References used: {fmt_value(w.get('references'))}.",
-    ]
-    spec = [("beam", "beam width", "int"), ("resolved", "search-side rows resolved", "int"),
-            ("resolved_share", "share resolved", "pct"), ("equals_reference_share", "output equals reference", "pct"),
-            ("changed", "outputs changed", "int"), ("sentence_delta.search", f"{m} change, search-side rows", "num"),
-            ("model_rows.worse", "model-side rows worse", "int"), ("model_rows.better", "model-side rows better", "int"),
-            ("corpus_after", f"corpus {m} after", "num"), ("corpus_delta", f"corpus {m} change", "num"),
-            ("seconds_per_row", "s per row", "sec"), ("time_ratio", "decode time (x current)", "num")]
-    return {"lines": lines, "tables": [t for t in [_table("By beam width", spec, w.get("widths"))] if t],
-            "notes": [str(n) for n in w.get("notes") or []]}
-
-
-def _curve_block(c: dict[str, Any]) -> dict[str, Any]:
-    m = c.get("metric") or "metric"
-    lines = [f"Corpus {m} and decode time over beam widths, on {fmt_value(c.get('rows'))} of "
-             f"{fmt_value(c.get('of'))} rows{' (a seeded sample)' if c.get('sampled') else ''}; current beam width "
-             f"{fmt_value(c.get('current_beam'))}. Width 1 is greedy search (no length penalty)."]
-    spec = [("beam", "beam width", "int"), ("corpus", f"corpus {m}", "num"),
-            ("exact_share", "outputs equal to a reference", "pct"), ("mean_output_tokens", "mean output tokens", "num"),
-            ("seconds_per_row", "s per row", "sec"), ("time_ratio", "decode time (x greedy)", "num")]
-    pts = c.get("points") if isinstance(c.get("points"), list) else []
-    chart = charts.curve([(p.get("beam"), p.get("corpus")) for p in pts if isinstance(p, dict)],
-                         f"corpus {m}", c.get("current_beam"))
-    return {"lines": lines, "chart": chart, "tables": [t for t in [_table("By beam width", spec, pts)] if t],
-            "notes": []}
-
-
-def _penalty_block(lp: dict[str, Any]) -> dict[str, Any]:
-    cur = lp.get("current") or {}
-    best = lp.get("best") or {}
-    lines = [f"Reference and output of the {fmt_value(lp.get('rows'))} compared rows re-scored under other length "
-             f"penalties (no decoding), at beam width {fmt_value(lp.get('rescored_at_beam'))}. Current: "
-             f"{fmt_value(cur.get('penalty'))}, alpha {fmt_value(cur.get('alpha'))}."]
-    if lp.get("note"):
-        lines.append(str(lp["note"]))
-    if best:
-        lines.append(f"Most rows turn from model-side to search-side at {fmt_value(best.get('penalty'))} alpha "
-                     f"{fmt_value(best.get('alpha'))}: {fmt_value(best.get('model_to_search'))} model-side to search-side, "
-                     f"{fmt_value(best.get('search_to_model'))} back ({fmt_pct(best.get('flip_share'))} of model-side rows).")
-    br = lp.get("brevity") or {}
-    if br:
-        lines.append(f"Model-side outputs shorter than their reference: {fmt_value(br.get('shorter'))} of "
-                     f"{fmt_value(br.get('model_rows'))} ({fmt_pct(br.get('short_share'))}); mean length ratio output / "
-                     f"reference {fmt_num(br.get('length_ratio'), 2)} (tokens incl. end token).")
-    grid = [("penalty", "penalty form", "text"), ("alpha", "alpha", "text"), ("counts.search", "search-side", "int"),
-            ("counts.model", "model-side", "int"), ("counts.tie", "tie", "int"),
-            ("model_to_search", "model-side to search-side", "int"), ("search_to_model", "search-side to model-side", "int"),
-            ("flip_share", "share of model-side rows flipped", "pct")]
-    bb = [("range", "length", "text"), ("rows", "rows", "int"), ("model_rows", "model-side rows", "int"),
-          ("short_share", "shorter than reference", "pct"), ("length_ratio", "length ratio, model-side", "num"),
-          ("length_ratio_all", "length ratio, all compared", "num")]
-    rd = [("penalty", "penalty form", "text"), ("alpha", "alpha", "text"), ("rows", "rows", "int"),
-          ("counts.search", "search-side", "int"), ("counts.model", "model-side", "int"),
-          ("counts.correct", "correct", "int"), ("counts_before.correct", "correct before", "int"),
-          ("corpus", "corpus metric", "num"), ("corpus_before", "before", "num"), ("corpus_delta", "change", "num")]
-    tables = [_table("Re-ranking under each penalty", grid, lp.get("grid")),
-              _table("Output length by bucket", bb, br.get("buckets") if isinstance(br, dict) else None),
-              _table("Re-decoded with another penalty", rd, lp.get("redecode"))]
-    return {"lines": lines, "tables": [t for t in tables if t], "notes": []}
-
-
-def _where_lost_block(w: dict[str, Any]) -> dict[str, Any]:
-    lines = [
-        f"For each of the {fmt_value(w.get('rows'))} search-side rows, triage's own beam search re-ran the decoder "
-        f"with the reference tracked: the step (target position) where the reference prefix fell out of the beam, "
-        f"its rank among the candidates there, and the smallest beam width (up to {fmt_value(w.get('max_width'))}) "
-        f"that keeps it to the end.",
-    ]
-    if w.get("kept_to_end"):
-        lines.append(f"{fmt_value(w.get('kept_to_end'))} rows kept the reference to the end but finished it "
-                     "below the output.")
-    widths = [{"beam": k, "rows": v} for k, v in sorted((w.get("keeps_at_beam") or {}).items(), key=lambda kv: int(kv[0]))]
-    spec = [("beam", "smallest beam width that keeps the reference", "int"), ("rows", "rows", "int")]
-    notes = []
-    if w.get("not_kept_up_to_max"):
-        notes.append(f"{fmt_value(w.get('not_kept_up_to_max'))} rows lose the reference even at width "
-                     f"{fmt_value(w.get('max_width'))}.")
-    return {"lines": lines, "chart": charts.loss_steps(w.get("by_bucket") or []),
-            "tables": [t for t in [_table("Width needed", spec, widths)] if t], "notes": notes}
-
-
-def _exact_block(e: dict[str, Any]) -> dict[str, Any]:
-    lines = [
-        f"Bounded depth-first exact search on {fmt_value(e.get('rows'))} compared failed rows whose output has at most "
-        f"{fmt_value(e.get('max_output_tokens'))} tokens (budget {fmt_value(e.get('max_nodes'))} nodes and "
-        f"{fmt_value(e.get('max_seconds'))} s per row): {fmt_value(e.get('proven'))} proven, "
-        f"{fmt_value(e.get('budget reached'))} reached the budget.",
-        f"On {fmt_value(e.get('beats_output'))} rows the search found an output the model scores above the decoder's "
-        f"output (a search error of the beam, whatever the reference); on {fmt_value(e.get('empty_best'))} rows the "
-        f"proven best output is empty.",
-    ]
-    return {"lines": lines, "tables": [], "notes": []}
-
-
-SWEEP_VIEWS = {"widen": _widen_block, "beam_curve": _curve_block, "length_penalty": _penalty_block,
-               "where_lost": _where_lost_block, "exact": _exact_block}
-
-
-def sweep_blocks(summary: dict[str, Any]) -> list[dict[str, Any]]:
-    """One block per sweep present in summary.json; a shape this report does not know is shown as a plain table."""
-    blocks = []
-    for key, title in SWEEP_KEYS:
-        val = summary.get(key)
-        if not val:
-            continue
-        block = None
-        if key in SWEEP_VIEWS and isinstance(val, dict):
-            try:
-                block = SWEEP_VIEWS[key](val)
-            except (TypeError, ValueError, AttributeError):
-                block = None
-        if block is None:
-            block = {"lines": [], "tables": [], "notes": [], "generic": generic_table(val)}
-        block.update(key=key, title=title, interrupted=isinstance(val, dict) and bool(val.get("interrupted")))
-        blocks.append(block)
-    return blocks
+def sweep_blocks(studies: dict[str, Any]) -> list[dict[str, Any]]:
+    """One block per study present (summary key -> its section, typed or as read from summary.json),
+    in the registry's order."""
+    return [_study_block(key, studies[key]) for key in STUDIES if studies.get(key)]
 
 
 # ------------------------------------------------------------------------ rows
