@@ -363,5 +363,5 @@ def test_tokenizer_that_needs_no_files_still_loads(tmp_path):
                    pad_token_id=0, eos_token_id=1, tokenizer_class="ByT5Tokenizer")
     T5ForConditionalGeneration(cfg).save_pretrained(tmp_path / "byt5")
     model = load_model(str(tmp_path / "byt5"))
-    # ByT5 maps each UTF-8 byte b to id b + 3 (3 special tokens first), the end token is appended by the scorer
+    # ByT5 maps each UTF-8 byte b to id b + 3 (3 special tokens first; from memory), the end token is appended by the scorer
     assert model.tokenize_targets(["abc"]) == [[ord("a") + 3, ord("b") + 3, ord("c") + 3]]

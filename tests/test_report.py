@@ -409,6 +409,7 @@ def test_far_out_margins_are_named_not_drawn():
     vals = list(rng.normal(-2.0, 0.5, 200)) + [4234.2, 190.0, -9999.0]
     below, inside, above = split_outliers(vals)
     q1, q3 = np.percentile(vals, [25, 75])  # numpy's default (linear) quantiles
+    # Tukey's far-out fences: Q1 - 3 IQR and Q3 + 3 IQR (Tukey 1977, Exploratory Data Analysis; from memory)
     assert below == [-9999.0] and above == [190.0, 4234.2]
     assert all(q1 - 3 * (q3 - q1) <= v <= q3 + 3 * (q3 - q1) for v in inside) and len(inside) == 200
     svg = str(gap_histogram(vals, ["model"] * len(vals)))

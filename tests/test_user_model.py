@@ -37,7 +37,7 @@ ROWS = [
     ("r5", "calling at york", "calling at york", "calling at yorkk"),
     ("r6", "gate 7", "gate seven", "gate 7"),
 ]
-GREEDY_LIMIT = 19  # no generation config: transformers' default max_length 20, start token included
+GREEDY_LIMIT = 19  # no generation config: transformers' default max_length 20 (from memory), start token included
 
 
 def write_devset(path: Path, with_output: bool) -> Path:

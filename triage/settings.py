@@ -93,7 +93,7 @@ class DecoderSettings:
             return int(self.max_new_tokens)
         if self.max_length is not None:
             return int(self.max_length) - 1
-        return 20 - 1  # transformers' default max_length of 20 includes the start token
+        return 20 - 1  # transformers' default max_length of 20 (from memory) includes the start token
 
     # ----------------------------------------------------------------- variants
     def replace(self, **changes: Any) -> DecoderSettings:
