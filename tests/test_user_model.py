@@ -203,7 +203,7 @@ def example(monkeypatch):
 def test_example_loads_and_scores_rows(example):
     assert type(example).__name__ == "UserModel"
     texts = [("Platform 4 is now closed.", "platform four is now closed", "platform 4 is now closed"),
-             ("Mind the gap.", "mind the gap", "mind the"),
+             ("Keep off the tracks.", "keep off the tracks", "keep off the"),
              ("The 08:40 is late.", "the oh eight forty is late", "the zero eight forty is late")]
     settings = example.default_settings
     reqs = [ScoreRequest(example.tokenize_sources([s])[0], example.tokenize_targets([r, o]))
@@ -229,9 +229,9 @@ def test_example_loads_and_scores_rows(example):
 
 
 def test_example_forced_pass_equals_stepping(example):
-    src = example.tokenize_sources(["Mind the gap.", "Platform 4."])
+    src = example.tokenize_sources(["Keep off the tracks.", "Platform 4."])
     state = example.encode(src)
-    inputs = torch.tensor([[example.start_id, *example.tokenize_targets(["mind the"])[0]],
+    inputs = torch.tensor([[example.start_id, *example.tokenize_targets(["keep off"])[0]],
                            [example.start_id, *example.tokenize_targets(["platform"])[0]]])
     forced = example.forced_logprobs(state, inputs)
     cache = None
