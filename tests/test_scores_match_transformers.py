@@ -3,7 +3,7 @@
 External references: transformers' own loss (MarianMTModel.forward with labels, mean cross-entropy
 over label tokens), transformers' `generate` (sequences_scores for beam search; per-step scores via
 compute_transition_scores for greedy search), the gnmt length penalty formula (Wu et al. 2016,
-from memory), and common practice about alpha.
+eq. 14, from memory), and common practice about alpha.
 """
 
 from __future__ import annotations
@@ -90,7 +90,7 @@ def test_batched_decode_scores_match_rescoring(tm):
 
 
 def test_gnmt_penalty_by_hand():
-    # Wu et al. 2016 length penalty lp(Y) = (5 + |Y|)^alpha / (5 + 1)^alpha (formula from memory)
+    # Wu et al. 2016, eq. 14: length penalty lp(Y) = (5 + |Y|)^alpha / (5 + 1)^alpha (formula from memory)
     s = DecoderSettings(beam=4, penalty="gnmt", alpha=0.6)
     assert s.length_penalty(10) == pytest.approx((15 / 6) ** 0.6)
     # by hand: (15/6)^0.6 = 2.5^0.6 = exp(0.6 * ln 2.5) = exp(0.549774) = 1.73286
