@@ -133,7 +133,7 @@ def gap_bins(values: Sequence[float], target: int = 16) -> list[tuple[float, flo
 
 
 def split_outliers(values: Sequence[float], k: float = 3.0) -> tuple[list[float], list[float], list[float]]:
-    """(below, inside, above) Tukey's far fences, Q1 - k*IQR and Q3 + k*IQR (k = 3: "far out").
+    """(below, inside, above) Tukey's far-out fences, Q1 - k*IQR and Q3 + k*IQR (k = 3; Tukey 1977, from memory).
 
     A few huge score gaps (a token the model all but forbids) would squeeze every other bar into one;
     the chart draws the inside values and names the others in words.
