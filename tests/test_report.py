@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import base64
 import csv
+import dataclasses
 import hashlib
 import json
 import math
@@ -16,6 +17,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 from tinymodels import make_marian, sentences
+
+from triage.rundir.reader import load_run
 
 HOSTILE_SCRIPT = "<script>document.title='pwned'</script>"
 HOSTILE_IMG = "\"><img src=x onerror=document.title='pwned'>"
@@ -285,7 +288,7 @@ def test_script_hash_follows_the_script(run_dir, monkeypatch):
     """The hash is computed from the script actually embedded, so editing the script keeps the page working."""
     from triage.report import page as report
 
-    summary, verdicts, tokens, info = report.load_run(run_dir)
+    summary, verdicts, tokens, info = load_run(run_dir)
     real = report._script
 
     def edited(env):
@@ -332,7 +335,7 @@ def test_rerender_from_run_dir_without_model(run_dir, tmp_path):
     before = (copy / "report.html").read_bytes()
     (copy / "report.html").unlink()
     code = ("import sys; sys.modules['torch'] = None; sys.modules['transformers'] = None; "
-            "from triage.report.page import rerender; rerender(sys.argv[1])")
+            "from triage.rundir.reader import rerender; rerender(sys.argv[1])")
     subprocess.run([sys.executable, "-c", code, str(copy)], check=True, cwd=Path(__file__).parent.parent)
     assert (copy / "report.html").read_bytes() == before
 
@@ -341,12 +344,12 @@ def test_rerender_from_run_dir_without_model(run_dir, tmp_path):
 def test_sweep_sections_render_only_when_present(run_dir):
     from triage.report import page as report
 
-    summary, verdicts, tokens, info = report.load_run(run_dir)
+    summary, verdicts, tokens, info = load_run(run_dir)
     plain = report.render_report(summary, verdicts, tokens, info)
     assert 'id="sweeps"' not in plain and "data-sweep" not in plain
-    # shapes as described for sweeps.py's summary keys
-    summary = dict(summary)
-    summary["widen"] = {"metric": "chrf", "current_beam": 4, "references": "all",
+    # sections as read from summary.json (dicts), of the shapes the studies write
+    summary = dataclasses.replace(summary)
+    summary.widen = {"metric": "chrf", "current_beam": 4, "references": "all",
                         "rows": {"failed": 40, "compared": 38, "redecoded": 38, "search": 25, "model": 12, "tie": 1},
                         "current": {"beam": 4, "seconds_per_row": 0.012, "reproduced_share": 1.0},
                         "corpus_before": 51.2,
@@ -355,13 +358,13 @@ def test_sweep_sections_render_only_when_present(run_dir):
                                     "corpus_after": 53.3, "corpus_delta": 2.1, "seconds_per_row": 0.037,
                                     "time_ratio": 3.1}],
                         "notes": [f"note {HOSTILE_SCRIPT}"], "interrupted": False}
-    summary["beam_curve"] = {"metric": "chrf", "current_beam": 4, "rows": 20, "of": 40,
+    summary.beam_curve = {"metric": "chrf", "current_beam": 4, "rows": 20, "of": 40,
                              "points": [{"beam": b, "corpus": 40 + b, "time_ratio": b / 2} for b in (1, 2, 4, 8)]}
-    summary["length_penalty"] = {"current": {"penalty": "power", "alpha": 1.0}, "rescored_at_beam": 4, "rows": 38,
+    summary.length_penalty = {"current": {"penalty": "power", "alpha": 1.0}, "rescored_at_beam": 4, "rows": 38,
                                  "grid": [{"penalty": "gnmt", "alpha": 0.6, "counts": {"search": 9, "model": 28},
                                            "model_to_search": 4, "search_to_model": 0, "flip_share": 0.125}],
                                  "best": {"penalty": "gnmt", "alpha": 0.6, "model_to_search": 4}}
-    summary["exact"] = [{"id": "row-3", "best": -1.25}]  # a key of a shape this page does not know
+    summary.exact = [{"id": "row-3", "best": -1.25}]  # a key of a shape this page does not know
     page = parse(report.render_report(summary, verdicts, tokens, info))
     html = report.render_report(summary, verdicts, tokens, info)
     assert 'id="sweeps"' in html
@@ -371,14 +374,14 @@ def test_sweep_sections_render_only_when_present(run_dir):
     assert "64.0%" in text and "53.30" in text and "12.5%" in text and "gnmt" in text and "row-3" in text
     assert f"note {HOSTILE_SCRIPT}" in text and HOSTILE_SCRIPT not in html
     # a malformed section is shown as a plain table, never breaks the page
-    summary["widen"] = {"widths": "not a list", "rows": 7}
+    summary.widen = {"widths": "not a list", "rows": 7}
     assert 'data-sweep="widen"' in report.render_report(summary, verdicts, tokens, info)
 
 
 def test_lost_at_columns_show_in_row_details(run_dir):
     from triage.report import page as report
 
-    summary, verdicts, tokens, info = report.load_run(run_dir)
+    summary, verdicts, tokens, info = load_run(run_dir)
     verdicts = verdicts.copy()
     verdicts["lost_at_step"] = [3 if v == "search" else math.nan for v in verdicts["verdict"]]
     verdicts["lost_at_width"] = [16 if v == "search" else math.nan for v in verdicts["verdict"]]
@@ -418,9 +421,12 @@ def test_far_out_margins_are_named_not_drawn():
 
 def test_length_bars_are_proportional_and_labelled():
     from triage.report.charts import LABELS, length_bars
+    from triage.run.summary import Bucket
 
-    svg = str(length_bars([{"range": "1-10", "rows": 8, "counts": {"search": 2, "model": 6}},
-                           {"range": "<x>", "rows": 4, "counts": {"search": 4, "model": 0}}]))
+    svg = str(length_bars([Bucket("1-10", rows=8, failed=8, counts={"search": 2, "model": 6}, search_share=0.25,
+                                  interval95=[None, None]),
+                           Bucket("<x>", rows=4, failed=4, counts={"search": 4, "model": 0}, search_share=1.0,
+                                  interval95=[None, None])]))
     widths = [float(w) for w in re.findall(r'<rect x="[\d.]+" y="\d+" width="([\d.]+)" height="20"', svg)]
     assert widths == pytest.approx([640 * 2 / 8, 640 * 6 / 8, 640.0], abs=0.05)
     assert LABELS["search"] in svg and LABELS["model"] in svg and "&lt;x&gt;" in svg and "<x>" not in svg

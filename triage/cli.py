@@ -1,4 +1,4 @@
-"""The command line: a thin shell over the library (triage.run.pipeline, triage.rundir.writer, triage.report.page).
+"""The command line: a thin shell over the library (triage.workflow.triage_run, triage.rundir.reader.rerender).
 
 torch and transformers are imported only inside the commands that need them, so
 ``triage --help`` answers at once.
@@ -11,11 +11,10 @@ import os
 import signal
 import sys
 import threading
-import time
 from pathlib import Path
 
 from triage import __version__
-from triage.errors import InputError, OptionError, TriageError
+from triage.errors import OptionError, OptionValueError, TriageError
 
 EPILOG = """\
 verdicts: search = the model prefers the reference (the beam missed it); model = the model prefers
@@ -162,145 +161,79 @@ def _columns(pairs: list[str]) -> dict[str, str]:
 
 
 def _check_out_dir(out_dir: Path) -> None:
-    """Refuse an output folder that cannot be made or written, without making it yet."""
-    there = out_dir
-    while not there.exists() and there != there.parent:
-        there = there.parent
-    if not there.is_dir():
-        raise OptionError(f"--out {out_dir}: cannot make the folder, {there} is a file")
-    if not os.access(there, os.W_OK | os.X_OK):
-        raise OptionError(f"--out {out_dir}: no permission to write in {there}")
+    from triage.rundir.writer import check_out_dir
+
+    check_out_dir(out_dir)
+
+
+FLAGS = {"chunk_rows": "--chunk-rows", "page_rows": "--page-rows", "max_rows": "--max-rows", "beam": "--beam"}
 
 
 def cmd_run(a: argparse.Namespace) -> int:
-    from triage.run.analysis import parse_edges
-    from triage.run.pipeline import DEFAULT_MARGIN, TriageOptions
-
+    """Parse, build the library's arguments, call triage_run, print, map its errors."""
     if not a.data and not a.source:
         raise OptionError("give the dev set: --data FILE, or --source F --reference F [--output F]")
     if a.data and (a.source or a.reference or a.output):
         raise OptionError("give either --data or --source/--reference/--output, not both")
     if a.source and not a.reference:
         raise OptionError("--source needs at least one --reference file")
+    from triage.data.devset import stream_devset
+    from triage.run.analysis import parse_edges
+    from triage.run.pipeline import DEFAULT_MARGIN, TriageOptions
+    from triage.workflow import StudyPlan, triage_run
+
     try:
         edges = parse_edges(a.buckets) if a.buckets else None
     except ValueError as exc:
         raise OptionError(str(exc)) from None
-    if a.chunk_rows < 1:
-        raise OptionError(f"--chunk-rows must be at least 1, got {a.chunk_rows}")
-    if a.page_rows is not None and a.page_rows < 1:
-        raise OptionError(f"--page-rows must be at least 1, got {a.page_rows}")
-    if a.max_rows is not None and a.max_rows < 1:
-        raise OptionError(f"--max-rows must be at least 1, got {a.max_rows}")
-    if a.beam is not None and a.beam < 1:
-        raise OptionError(f"--beam must be at least 1, got {a.beam}")
-
-    from triage.data.devset import read_devset, stream_devset
-
-    t0 = time.perf_counter()
-    # decoding sweeps and search checks work on rows held in memory; otherwise the dev set streams
-    # through in steps of --chunk-rows rows, checked in full first (a first pass that keeps nothing)
-    in_memory = bool(a.widen or a.beam_curve or a.redecode_alpha or a.where_lost or a.exact)
-    where = dict(source=a.source, references=a.reference or None, output=a.output,
-                 columns=_columns(a.column) or None, fmt=a.format)
-    dev = read_devset(a.data, **where) if in_memory else stream_devset(a.data, **where).check()
-    out_dir = Path(a.out) if a.out else Path("reports") / dev.name
-    _check_out_dir(out_dir)  # a folder that cannot be made fails now, not after scoring
-
-    if a.threads:
-        import torch
-
-        torch.set_num_threads(a.threads)
-    from triage.models.describe import model_settings
-    from triage.models.loading import load_model
-
-    model = load_model(a.model, device=a.device, allow_pickle=a.allow_pickle,
-                       trust_remote_code=a.trust_remote_code)
-    try:
-        settings = model_settings(model, beam=a.beam, alpha=a.alpha, penalty=a.penalty,
-                                  max_new_tokens=a.max_new_tokens, early_stopping=a.early_stopping,
-                                  source_prefix=a.prefix)
-    except ValueError as exc:
-        raise OptionError(str(exc)) from None
-    from triage.studies.sweeps import PenaltyTally, estimate_seconds, parse_alphas, parse_widths, run_sweeps
-
-    # sweep options are checked before anything is scored, so a typo costs no scoring time
-    widths = parse_widths(a.widen, settings.beam) if a.widen else None
-    alphas = parse_alphas(a.alpha_grid) if a.alpha_grid else None
-    redecode = parse_alphas(a.redecode_alpha) if a.redecode_alpha else None
-    options = TriageOptions(metric=a.metric, below=a.below,
-                            margin=DEFAULT_MARGIN if a.margin is None else a.margin,
+    stream = stream_devset(a.data, source=a.source, references=a.reference or None, output=a.output,
+                           columns=_columns(a.column) or None, fmt=a.format)
+    out_dir = Path(a.out) if a.out else Path("reports") / stream.name
+    options = TriageOptions(metric=a.metric, below=a.below, margin=DEFAULT_MARGIN if a.margin is None else a.margin,
                             bucket_by=a.bucket_by, token_budget=a.token_budget, progress=not a.quiet,
                             chunk_rows=a.chunk_rows)
     if edges:
         options.edges = edges
     if not a.no_cache:
         options.cache_dir = Path(a.cache_dir) if a.cache_dir else out_dir / ".cache"
-    from triage.models.describe import model_info
-    from triage.run.analysis import recommend, settings_mismatch
-    from triage.run.pipeline import run_triage
-    from triage.rundir.writer import RunWriter
+    plan = StudyPlan(widen=a.widen, beam_curve=a.beam_curve, alpha_grid=a.alpha_grid, redecode_alpha=a.redecode_alpha,
+                     max_rows=a.max_rows, seed=a.seed, where_lost=a.where_lost, exact=a.exact)
+    overrides = dict(beam=a.beam, alpha=a.alpha, penalty=a.penalty, max_new_tokens=a.max_new_tokens,
+                     early_stopping=a.early_stopping, source_prefix=a.prefix)
+    if a.threads:
+        import torch
 
-    info = model_info(model, a.model)
-    plan = dict(widen=widths, beam_curve_max=a.beam_curve, alphas=alphas, redecode_alpha=redecode,
-                max_rows=a.max_rows, seed=a.seed)
-    with RunWriter(out_dir, a.page_rows) as writer:
-        if in_memory:
-            result = run_triage(model, dev, settings, options, model_info=info)
-            if widths or a.beam_curve or redecode:
-                est = estimate_seconds(model, result, **plan)
-                print(f"triage: sweeps estimated at {est['seconds']:.0f} s (measured on {est['sample_rows']} rows)",
-                      file=sys.stderr)
-            result.summary.update(run_sweeps(model, result, **plan, progress=not a.quiet, devset=dev,
-                                             length_penalty=True))
-            if a.where_lost or a.exact:
-                from triage.studies.search_checks import run_search_checks
-
-                run_search_checks(model, result, where_lost_rows=a.where_lost, exact=a.exact,
-                                  progress=not a.quiet)
-            writer.add(result.verdicts, result.tokens)
-        else:
-            # the length-penalty re-ranking needs no row kept: it is tallied step by step
-            penalty = PenaltyTally(settings, options.margin, options.metric, alphas)
-            result = run_triage(model, dev, settings, options, model_info=info, keep=False,
-                                on_step=[writer.add_step, penalty.add_step])
-            result.summary.update(run_sweeps(model, result, alphas=alphas, progress=not a.quiet,
-                                             length_penalty=True, penalty_tally=penalty))
-        result.summary["recommendation"] = recommend(result.summary["counts"], result.summary)
-        run_info = {
-            "created": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
-            "elapsed_s": round(time.perf_counter() - t0, 2),
-            "command": "triage " + " ".join(sys.argv[1:]),
-            "cache": result.cache,
-            "page_rows": writer.page.per_verdict,  # triage report lists as many unless told otherwise
-        }
-        writer.finish(result.summary, run_info)
-    _print_summary(result, out_dir, run_info)
-    foreign = result.summary["outputs_not_from_these_settings"]
-    mismatch = settings_mismatch(result.summary)
-    if mismatch:
-        raise InputError(mismatch, path=dev.path, line=foreign["first_line"],
-                         hint="pass the settings the outputs were decoded with (--beam, --alpha, --penalty, "
-                         "--max-new-tokens, ...) or leave them to generation_config.json; the files were "
-                         "written with those rows skipped")
-    if foreign["rows"]:
-        k = foreign["rows"]
+        torch.set_num_threads(a.threads)
+    try:
+        outcome = triage_run(a.model, stream, overrides, options, studies=plan, out=out_dir, page_rows=a.page_rows,
+                             command="triage " + " ".join(sys.argv[1:]),
+                             load=dict(device=a.device, allow_pickle=a.allow_pickle,
+                                       trust_remote_code=a.trust_remote_code),
+                             on_note=lambda text: print(f"triage: {text}", file=sys.stderr))
+    except OptionValueError as exc:  # the library names its parameter, the command line its flag
+        raise OptionError(f"{FLAGS.get(exc.option, exc.option)} {exc.detail}") from None
+    _print_summary(outcome.result, out_dir, outcome.run_info)
+    problem = outcome.settings_problem()
+    if problem is not None:
+        raise problem
+    foreign = outcome.summary.outputs_not_from_these_settings
+    if foreign.rows:
+        k = foreign.rows
         print(f"triage: warning: {k} failed output{'s' if k > 1 else ''} cannot come from the decoder at these "
-              f"settings (first on line {foreign['first_line']}); skipped, see skipped_reasons", file=sys.stderr)
+              f"settings (first on line {foreign.first_line}); skipped, see skipped_reasons", file=sys.stderr)
     return 0
 
 
 def _print_summary(result, out_dir: Path, run_info: dict) -> None:
     s = result.summary
-    c = s["counts"]
-    print(f"triage {__version__}: {s['data']['rows']} rows, objective {s['objective']}")
-    print("  " + ", ".join(f"{k} {v}" for k, v in c.items()))
-    ss = s["search_share"]
-    if ss["compared"]:
-        lo, hi = ss["interval95"]
-        print(f"  search-side share of compared failures: {ss['share']:.0%} (95% interval {lo:.0%}-{hi:.0%})")
-    rec = s["recommendation"]
-    print(f"  recommendation: {rec['action']}: {rec['because']}")
+    print(f"triage {__version__}: {s.data.rows} rows, objective {s.objective}")
+    print("  " + ", ".join(f"{k} {v}" for k, v in s.counts.items()))
+    ss = s.search_share
+    if ss.compared:
+        lo, hi = ss.interval95
+        print(f"  search-side share of compared failures: {ss.share:.0%} (95% interval {lo:.0%}-{hi:.0%})")
+    rec = s.recommendation
+    print(f"  recommendation: {rec.action}: {rec.because}")
     cache = result.cache
     if cache:
         print(f"  scores: {cache.get('hits', 0)} rows from the cache, {cache.get('misses', 0)} scored")
@@ -308,14 +241,12 @@ def _print_summary(result, out_dir: Path, run_info: dict) -> None:
 
 
 def cmd_report(a: argparse.Namespace) -> int:
-    from triage.report.page import rerender
+    from triage.rundir.reader import rerender
 
-    run_dir = Path(a.run_dir)
-    if not (run_dir / "summary.json").is_file() or not (run_dir / "verdicts.csv").is_file():
-        raise TriageError("not a run directory (needs summary.json and verdicts.csv)", path=str(run_dir))
-    if a.page_rows is not None and a.page_rows < 1:
-        raise OptionError(f"--page-rows must be at least 1, got {a.page_rows}")
-    out = rerender(run_dir, a.page_rows)
+    try:
+        out = rerender(a.run_dir, a.page_rows)
+    except OptionValueError as exc:
+        raise OptionError(f"{FLAGS.get(exc.option, exc.option)} {exc.detail}") from None
     print(f"wrote {out}")
     return 0
 

@@ -35,3 +35,17 @@ class ModelError(TriageError):
 
 class OptionError(TriageError):
     """An option value is wrong or two options contradict each other."""
+
+
+class OptionValueError(OptionError):
+    """An option value out of range, named by its Python name (the CLI names its flag instead)."""
+
+    def __init__(self, option: str, detail: str):
+        self.option, self.detail = option, detail
+        super().__init__(f"{option} {detail}")
+
+
+def check_at_least_one(option: str, value: int | None) -> None:
+    """The one check of a count option (rows per step, rows per page, sampled rows, beam width)."""
+    if value is not None and value < 1:
+        raise OptionValueError(option, f"must be at least 1, got {value}")

@@ -9,9 +9,12 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from markupsafe import Markup, escape
+
+if TYPE_CHECKING:
+    from triage.run.summary import Bucket
 
 # Okabe & Ito (2008), "Color Universal Design" palette; hex values from memory (common practice).
 COLOURS = {
@@ -47,11 +50,11 @@ def _pct(x: float) -> str:
     return f"{x * 100:.0f}%"
 
 
-def length_bars(buckets: Sequence[dict[str, Any]], order: Sequence[str] = BAR_ORDER) -> Markup:
+def length_bars(buckets: Sequence[Bucket], order: Sequence[str] = BAR_ORDER) -> Markup:
     """100%-stacked horizontal bars, one per length bucket, with a legend and the row count."""
     if not buckets:
         return Markup("")
-    present = [v for v in order if any(int(b.get("counts", {}).get(v, 0) or 0) for b in buckets)]
+    present = [v for v in order if any(int(b.counts.get(v, 0) or 0) for b in buckets)]
     left, right, bar_w, row_h, bar_h, top = 64, 64, 640, 30, 20, 40
     width = left + bar_w + right
     height = top + row_h * len(buckets) + 30
@@ -73,16 +76,16 @@ def length_bars(buckets: Sequence[dict[str, Any]], order: Sequence[str] = BAR_OR
                    f'text-anchor="middle">{_pct(t)}</text>')
     for i, b in enumerate(buckets):
         y = top + i * row_h
-        rows = int(b.get("rows") or 0)
-        out.append(f'<text x="{left - 8}" y="{y + bar_h - 5}" class="ax" text-anchor="end">{escape(b.get("range"))}</text>')
+        rows = int(b.rows or 0)
+        out.append(f'<text x="{left - 8}" y="{y + bar_h - 5}" class="ax" text-anchor="end">{escape(b.range)}</text>')
         out.append(f'<text x="{left + bar_w + 8}" y="{y + bar_h - 5}" class="ax">n={rows}</text>')
         x0 = float(left)
         for v in present:
-            c = int(b.get("counts", {}).get(v, 0) or 0)
+            c = int(b.counts.get(v, 0) or 0)
             if not c or not rows:
                 continue
             w = bar_w * c / rows
-            tip = f"{b.get('range')}: {LABELS[v]} {c} of {rows} ({_pct(c / rows)})"
+            tip = f"{b.range}: {LABELS[v]} {c} of {rows} ({_pct(c / rows)})"
             out.append(f'<rect x="{_f(x0)}" y="{y}" width="{_f(w)}" height="{bar_h}" fill="{COLOURS[v]}">'
                        f'<title>{escape(tip)}</title></rect>')
             if w >= 8 * len(str(c)) + 6:

@@ -9,11 +9,11 @@ autoescape. Without scripts the page reads the same, only the filter controls st
 from __future__ import annotations
 
 import base64
+import dataclasses
 import hashlib
 import json
 import math
 from array import array
-from pathlib import Path
 from typing import Any
 
 import pandas as pd
@@ -22,6 +22,7 @@ from markupsafe import Markup
 from triage.display import finite as _finite
 from triage.display import fmt_interval, fmt_num, fmt_pct, fmt_value
 from triage.report import charts
+from triage.run.summary import Action, Summary
 from triage.run.verdicts import COMPARED
 from triage.settings import DecoderSettings
 from triage.studies import SECTIONS, STUDIES
@@ -83,17 +84,20 @@ COLUMN_LABELS = {
 
 # ------------------------------------------------------------------------ formatting (triage.display)
 def _get(d: Any, path: str) -> Any:
+    """The value at a dotted summary.json path, in a dict or in a typed section (its fields are the keys)."""
     for part in path.split("."):
         if isinstance(d, dict):
             d = d.get(part)
         elif isinstance(d, list) and part.isdigit() and int(part) < len(d):
             d = d[int(part)]
+        elif dataclasses.is_dataclass(d) and not isinstance(d, type) and part in {f.name for f in dataclasses.fields(d)}:
+            d = getattr(d, part)
         else:
             return None
     return d
 
 
-def _num_markup(summary: dict[str, Any]):
+def _num_markup(summary: Summary):
     """num(path, kind): the value at `path` in summary.json, shown formatted, tagged with its path."""
 
     def num(path: str, kind: str = "int") -> Markup:
@@ -332,9 +336,9 @@ def _script(env) -> tuple[Markup, str]:
     return Markup(src), f"sha256-{digest}"
 
 
-def _settings(summary: dict[str, Any]) -> DecoderSettings | None:
+def _settings(summary: Summary) -> DecoderSettings | None:
     try:
-        return DecoderSettings.from_dict(summary.get("settings") or {})
+        return DecoderSettings.from_dict(summary.settings or {})
     except (TypeError, ValueError):
         return None
 
@@ -359,7 +363,7 @@ def _labelled(d: Any, labels: list[tuple[str, str]], always: tuple[str, ...] = (
     return items, unset
 
 
-def render_report(summary: dict[str, Any], verdicts: pd.DataFrame, tokens: list[dict[str, Any]],
+def render_report(summary: Summary, verdicts: pd.DataFrame, tokens: list[dict[str, Any]],
                   run_info: dict[str, Any]) -> str:
     """The page for a run held in memory (its verdicts frame and token records)."""
     page = PageRows()
@@ -367,23 +371,23 @@ def render_report(summary: dict[str, Any], verdicts: pd.DataFrame, tokens: list[
     return render_page(summary, page, run_info)
 
 
-def render_page(summary: dict[str, Any], page: PageRows, run_info: dict[str, Any]) -> str:
+def render_page(summary: Summary, page: PageRows, run_info: dict[str, Any]) -> str:
+    """The page of a run: its typed Summary (with its recommendation decided), the rows the page
+    lists (PageRows) and run.json's content."""
     env = _env()
     script, script_hash = _script(env)
-    summary = summary or {}
     run_info = run_info or {}
-    options = summary.get("options") or {}
-    metric = options.get("metric") or ("chrf" if "chrf" in page.columns else "bleu")
+    metric = summary.options.metric or ("chrf" if "chrf" in page.columns else "bleu")
     settings = _settings(summary)
     rows = _rows(page.frame(), page.tokens, metric, settings)
-    counts = summary.get("counts") or {}
-    buckets = summary.get("buckets") or []
+    counts = summary.counts or {}
+    buckets = summary.buckets or []
     gaps = list(page.gaps)
     nonfinite = page.nonfinite
-    rec = summary.get("recommendation") or {}
-    action = rec.get("action", "inconclusive")
-    sweeps = sweep_blocks(summary)
-    s = summary.get("settings") or {}
+    rec = summary.recommendation
+    action = rec.action.value if rec is not None else Action.INCONCLUSIVE.value
+    sweeps = sweep_blocks(summary.studies())
+    s = summary.settings or {}
     settings_items, settings_unset = _labelled(s, SETTINGS_LABELS, ("beam", "penalty", "alpha"), skip_unset=True)
     return env.get_template("report.html.j2").render(
         s=summary, run=run_info, rows=rows, n_rows=page.rows, n_failed=page.failed, per_verdict=page.per_verdict,
@@ -391,87 +395,20 @@ def render_page(summary: dict[str, Any], page: PageRows, run_info: dict[str, Any
         counts=counts, buckets=buckets, verdict_order=[v for v in VERDICT_ORDER if v in counts] or list(VERDICT_ORDER),
         labels=charts.LABELS, colours=charts.COLOURS, ink=charts.INK,
         action=action, action_text=ACTIONS.get(action, action), action_meaning=ACTION_MEANING.get(action, ""),
-        because=rec.get("because", ""), missing=rec.get("missing") or [],
+        because=rec.because if rec is not None else "", missing=(rec.missing if rec is not None else None) or [],
         bars=charts.length_bars(buckets),
-        histogram=charts.gap_histogram(gaps, [COMPARED[i] for i in page.gap_verdicts], options.get("margin")),
+        histogram=charts.gap_histogram(gaps, [COMPARED[i] for i in page.gap_verdicts], summary.options.margin),
         n_gaps=len(gaps),
         nonfinite_gaps=nonfinite,
-        model_items=_labelled(summary.get("model"), MODEL_LABELS, ("path", "sha256"))[0],
-        data_items=_labelled(summary.get("data"), DATA_LABELS, ("path", "sha256"))[0],
+        model_items=_labelled(summary.model, MODEL_LABELS, ("path", "sha256"))[0],
+        data_items=_labelled(dataclasses.asdict(summary.data), DATA_LABELS, ("path", "sha256"))[0],
         settings_items=settings_items, settings_unset=settings_unset,
-        bucket_verdicts=[v for v in VERDICT_ORDER if any((b.get("counts") or {}).get(v) for b in buckets)
+        bucket_verdicts=[v for v in VERDICT_ORDER if any(b.counts.get(v) for b in buckets)
                          or v in ("search", "model")],
         penalty_text=PENALTY_TEXT.get(s.get("penalty"), "") if (settings is None or settings.normalizes)
         else "score = sum of log-probs (no length penalty at these settings)",
         sweeps=sweeps, bucket_values=sorted({r.get("bucket") for r in rows if r.get("bucket")},
-                                            key=lambda b: [x["range"] for x in buckets].index(b)
-                                            if b in [x["range"] for x in buckets] else 1 << 30),
+                                            key=lambda b: [x.range for x in buckets].index(b)
+                                            if b in [x.range for x in buckets] else 1 << 30),
         script=script, script_hash=script_hash, num=_num_markup(summary),
     )
-
-
-TEXT_COLUMNS = ("id", "verdict", "reason", "bucket", "source", "reference", "output")
-
-
-def _typed(verdicts: pd.DataFrame) -> pd.DataFrame:
-    for col in verdicts.columns:
-        if col in TEXT_COLUMNS:
-            continue
-        cells = verdicts[col]
-        if len(cells) and cells.isin(["True", "False"]).all():
-            verdicts[col] = cells == "True"
-            continue
-        try:
-            verdicts[col] = pd.to_numeric(cells.replace("", math.nan))
-        except (ValueError, TypeError):
-            pass
-    return verdicts
-
-
-def _verdict_parts(run_dir: Path, rows: int = 20_000):
-    """verdicts.csv in parts of `rows` rows. Text cells stay text ("NaN" is a word); the other
-    columns become numbers (empty cell: missing) or booleans where they can."""
-    with pd.read_csv(run_dir / "verdicts.csv", dtype=str, keep_default_na=False, chunksize=rows) as reader:
-        for part in reader:
-            yield _typed(part)
-
-
-def _token_records(run_dir: Path):
-    path = run_dir / "tokens.jsonl"
-    if path.exists():
-        with open(path, encoding="utf-8", newline="") as fh:
-            for line in fh:  # lines end in "\n" only; U+2028 and the like stay inside a record
-                if line.strip():
-                    yield json.loads(line)
-
-
-def _json_files(run_dir: Path) -> tuple[dict[str, Any], dict[str, Any]]:
-    summary = json.loads((run_dir / "summary.json").read_text(encoding="utf-8"))
-    run_path = run_dir / "run.json"
-    run_info = json.loads(run_path.read_text(encoding="utf-8")) if run_path.exists() else {}
-    return summary, run_info
-
-
-def load_run(run_dir: str | Path) -> tuple[dict[str, Any], pd.DataFrame, list[dict[str, Any]], dict[str, Any]]:
-    """The run's files, whole, as render_report takes them (for a notebook; rerender reads them in parts)."""
-    run_dir = Path(run_dir)
-    summary, run_info = _json_files(run_dir)
-    verdicts = _typed(pd.read_csv(run_dir / "verdicts.csv", dtype=str, keep_default_na=False))
-    return summary, verdicts, list(_token_records(run_dir)), run_info
-
-
-def rerender(run_dir: str | Path, page_rows: int | None = None) -> Path:
-    """Re-render report.html from the run directory alone, reading its rows in parts; the page
-    lists page_rows failed rows per verdict (default: as many as the run's page, from run.json)."""
-    from triage.rundir.writer import atomic_write
-
-    run_dir = Path(run_dir)
-    summary, run_info = _json_files(run_dir)
-    page = PageRows(page_rows or run_info.get("page_rows"))
-    for part in _verdict_parts(run_dir):
-        page.add_rows(part)
-    for rec in _token_records(run_dir):
-        page.add_tokens([rec])
-    out = run_dir / "report.html"
-    atomic_write(out, render_page(summary, page, run_info))
-    return out

@@ -5,17 +5,18 @@
     result = run_triage(model, read_devset("sample_data/devset.tsv"))
     result.verdicts        # one row per input row, in input order (pandas DataFrame)
     result.buckets         # counts per length bucket with the search share's 95% interval
-    result.summary         # what summary.json holds
+    result.summary         # a Summary (triage.run.summary); summary.json is result.summary.to_json()
 
 The dev set goes through in steps of ``options.chunk_rows`` rows: decode (when it has no
 outputs), find the failed rows, score them (through the score cache), label every row. The
 summary is built from running totals (a Tally), never from all rows at once. So a dev set of
 any size can stream through: ``run_triage(model, stream_devset(path), keep=False,
-on_step=writer.add_step)`` hands each step's rows on (outputs.RunWriter appends them to the
+on_step=writer.add_step)`` hands each step's rows on (triage.rundir.writer.RunWriter appends them to the
 run's files) and keeps none of them; memory is then bounded by the step size, plus 8 bytes per
 compared row here (the score gaps, for their median) and 8 in the page (for its histogram).
 
-Writing files (verdicts.csv, summary.json, tokens.jsonl, report.html) is outputs.py's job.
+Writing files (verdicts.csv, summary.json, tokens.jsonl, report.html) is triage.rundir's job; the
+recommendation is decided once per run by triage.decision (triage.workflow.triage_run does both).
 """
 
 from __future__ import annotations
@@ -29,18 +30,28 @@ from typing import Any
 import pandas as pd
 
 from triage import __version__
-from triage.errors import OptionError
+from triage.errors import check_at_least_one
 from triage.models.describe import model_settings
 from triage.run.analysis import (
     DEFAULT_EDGES,
     assign_bucket,
     bucket_table_from_counts,
-    recommend,
     search_share,
 )
 from triage.run.metrics import CorpusStats, sentence_scores
 from triage.run.progress import bar as _bar
 from triage.run.signature import run_signature
+from triage.run.summary import (
+    Bucket,
+    CorpusMetric,
+    DataInfo,
+    ForeignOutputs,
+    OptionsInfo,
+    ScoreGap,
+    SearchShare,
+    Summary,
+    Tool,
+)
 from triage.run.verdicts import COMPARED, FAILED, VERDICTS, decide, matches_any
 from triage.scoring.scorer import ScoreRequest, TargetScore, score_requests, source_problem
 from triage.settings import DecoderSettings
@@ -67,7 +78,7 @@ class TriageOptions:
 class TriageResult:
     verdicts: pd.DataFrame | None       # None when run with keep=False (the rows went to on_step)
     buckets: pd.DataFrame
-    summary: dict[str, Any]
+    summary: Summary                    # typed; summary.json is summary.to_json()
     tokens: list[dict[str, Any]]
     settings: DecoderSettings
     options: TriageOptions
@@ -155,14 +166,13 @@ def run_triage(
     """Triage a dev set: a DevSet from read_devset, a DataFrame with id, source, references,
     output, or a DevSetStream from stream_devset.
 
-    on_step: called with each step's ChunkResult, in input order (e.g. outputs.RunWriter.add_step,
+    on_step: called with each step's ChunkResult, in input order (e.g. triage.rundir.writer.RunWriter.add_step,
     which appends the rows to the run's files). keep=False keeps no rows (result.verdicts is None,
     result.scores empty): memory then no longer grows with the dev set.
     """
     options = options or TriageOptions()
     settings = settings or model_settings(model)
-    if options.chunk_rows < 1:
-        raise OptionError(f"rows per step must be at least 1, got {options.chunk_rows}")
+    check_at_least_one("chunk_rows", options.chunk_rows)
     steps, total = _frames(devset, options.chunk_rows)
     consumers = [on_step] if callable(on_step) else list(on_step)
     tally = Tally(options)
@@ -274,7 +284,7 @@ def _triage_step(model, frame: pd.DataFrame, settings: DecoderSettings, options:
                 v.reason = f"source: {unscorable[i][0]}"
             if out_s.scored and out_s.blocked_rule is not None:  # the decoder could not have written it
                 foreign.setdefault(out_s.blocked_rule, []).append(row["line"])
-            row.update(verdict=v.verdict, reason=v.reason)
+            row.update(verdict=v.verdict.value, reason=v.reason)
             best = v.best_ref if v.best_ref is not None else 0
             kept[offset + i] = (ref_s, out_s)
         r = ref_s[best] if ref_s else None
@@ -449,60 +459,44 @@ def _token_record(model, row_id, ref: TargetScore | None, out: TargetScore) -> d
     return {"id": row_id, "reference": side(ref), "output": side(out)}
 
 
-def _summary(tally: Tally, buckets, settings, options, devset, model, model_info) -> dict[str, Any]:
+def _summary(tally: Tally, buckets, settings, options, devset, model, model_info) -> Summary:
+    """The run's Summary from its running totals; the recommendation is left to triage.decision."""
     counts = dict(tally.counts) if tally.rows else {}
     k, n = search_share(counts)
     failed = sum(counts.get(v, 0) for v in FAILED)
     score, sig = tally.corpus.score()
-    summary: dict[str, Any] = {
-        "tool": {"name": "triage", "version": __version__},
-        "model": model_info or {"fingerprint": model.fingerprint()},
-        "data": {
-            "path": getattr(devset, "path", None),
-            "sha256": getattr(devset, "sha256", None),
-            "format": getattr(devset, "fmt", None),
-            "rows": tally.rows,
-            "outputs": "decoded by triage" if tally.decoded else "given",
-        },
-        "settings": settings.to_dict(),
-        "objective": settings.signature(),
-        "signature": run_signature(settings, options, sig),  # the whole run: objective, version, rules, metric
-        "options": {
-            "metric": options.metric,
-            "below": options.below,
-            "margin": options.margin,
-            "bucket_edges": list(options.edges),
-            "bucket_by": options.bucket_by,
-        },
-        "counts": counts,
-        "failed": failed,
-        "search_share": {"search": k, "compared": n, "share": k / n if n else None,
-                         "interval95": list(_ci(k, n))},
-        "buckets": [
-            {
-                "range": b["range"],
-                "rows": int(b["rows"]),
-                "failed": int(b["failed"]),
-                "counts": {v: int(b[v]) for v in counts},
-                "search_share": None if math.isnan(b["search_share"]) else float(b["search_share"]),
-                "interval95": [None if math.isnan(b["search_low"]) else float(b["search_low"]),
-                               None if math.isnan(b["search_high"]) else float(b["search_high"])],
-            }
+    return Summary(
+        tool=Tool("triage", __version__),
+        model=model_info or {"fingerprint": model.fingerprint()},
+        data=DataInfo(path=getattr(devset, "path", None), sha256=getattr(devset, "sha256", None),
+                      format=getattr(devset, "fmt", None), rows=tally.rows,
+                      outputs="decoded by triage" if tally.decoded else "given"),
+        settings=settings.to_dict(),
+        objective=settings.signature(),
+        signature=run_signature(settings, options, sig),  # the whole run: objective, version, rules, metric
+        options=OptionsInfo(metric=options.metric, below=options.below, margin=options.margin,
+                            bucket_edges=list(options.edges), bucket_by=options.bucket_by),
+        counts=counts,
+        failed=failed,
+        search_share=SearchShare(k, n, k / n if n else None, list(_ci(k, n))),
+        buckets=[
+            Bucket(range=b["range"], rows=int(b["rows"]), failed=int(b["failed"]),
+                   counts={v: int(b[v]) for v in counts},
+                   search_share=None if math.isnan(b["search_share"]) else float(b["search_share"]),
+                   interval95=[None if math.isnan(b["search_low"]) else float(b["search_low"]),
+                               None if math.isnan(b["search_high"]) else float(b["search_high"])])
             for _, b in buckets.iterrows()
         ],
-        "score_gap": _describe(tally.gaps),
-        "corpus_metric": {"name": options.metric, "score": score, "signature": sig},
+        score_gap=_describe(tally.gaps),
+        corpus_metric=CorpusMetric(options.metric, score, sig),
         # most frequent first; equal counts in order of first appearance
-        "skipped_reasons": dict(sorted(tally.skipped.items(), key=lambda kv: -kv[1])),
-        "outputs_at_length_limit": tally.at_limit,
+        skipped_reasons=dict(sorted(tally.skipped.items(), key=lambda kv: -kv[1])),
+        outputs_at_length_limit=tally.at_limit,
         # failed rows whose output a rule of these settings forbids: the decoder cannot have written them
-        "outputs_not_from_these_settings": {
-            "rows": sum(tally.foreign.values()), "of_failed": failed, "rules": dict(sorted(tally.foreign.items())),
-            "first_line": tally.foreign_line,
-        },
-    }
-    summary["recommendation"] = recommend(counts, summary)
-    return summary
+        outputs_not_from_these_settings=ForeignOutputs(rows=sum(tally.foreign.values()), of_failed=failed,
+                                                       rules=dict(sorted(tally.foreign.items())),
+                                                       first_line=tally.foreign_line),
+    )
 
 
 def _ci(k: int, n: int) -> tuple[float | None, float | None]:
@@ -512,10 +506,9 @@ def _ci(k: int, n: int) -> tuple[float | None, float | None]:
     return (None if math.isnan(lo) else lo, None if math.isnan(hi) else hi)
 
 
-def _describe(values: Sequence[float]) -> dict[str, Any]:
+def _describe(values: Sequence[float]) -> ScoreGap:
     s = pd.Series(list(values), dtype="float64")
     s = s[s.apply(math.isfinite)]
     if s.empty:
-        return {"n": 0}
-    return {"n": int(s.size), "mean": float(s.mean()), "median": float(s.median()),
-            "min": float(s.min()), "max": float(s.max())}
+        return ScoreGap(0)
+    return ScoreGap(int(s.size), float(s.mean()), float(s.median()), float(s.min()), float(s.max()))

@@ -19,14 +19,27 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from enum import StrEnum
 from typing import TYPE_CHECKING
 
 if TYPE_CHECKING:  # the report imports this module and renders without torch
     from triage.scoring.scorer import TargetScore
 
-VERDICTS = ("correct", "search", "model", "tie", "blocked", "skipped")
-FAILED = ("search", "model", "tie", "blocked", "skipped")
-COMPARED = ("search", "model", "tie")  # failed rows whose two scores could be compared
+
+class Verdict(StrEnum):
+    """A row's verdict (the one definition; a member equals its text, so "search" == Verdict.SEARCH)."""
+
+    CORRECT = "correct"
+    SEARCH = "search"
+    MODEL = "model"
+    TIE = "tie"
+    BLOCKED = "blocked"
+    SKIPPED = "skipped"
+
+
+VERDICTS = tuple(Verdict)                                            # every verdict, in report order
+FAILED = tuple(v for v in Verdict if v is not Verdict.CORRECT)       # the verdicts of failed rows
+COMPARED = (Verdict.SEARCH, Verdict.MODEL, Verdict.TIE)              # failed rows whose two scores were compared
 
 
 def normalize_ws(text: str) -> str:
@@ -39,31 +52,31 @@ def matches_any(output: str, references: list[str]) -> bool:
 
 
 @dataclass
-class Verdict:
-    verdict: str
+class RowVerdict:
+    verdict: Verdict
     reason: str
     best_ref: int | None = None   # index of the best-scoring reference
 
 
-def decide(ref_scores: list[TargetScore], out_score: TargetScore, margin: float) -> Verdict:
+def decide(ref_scores: list[TargetScore], out_score: TargetScore, margin: float) -> RowVerdict:
     """The verdict of a failed row from its scored references and output."""
     if not out_score.scored:
-        return Verdict("skipped", f"output: {out_score.skipped}")
+        return RowVerdict(Verdict.SKIPPED, f"output: {out_score.skipped}")
     scored = [(k, s) for k, s in enumerate(ref_scores) if s.scored]
     if not scored:
-        return Verdict("skipped", f"reference: {ref_scores[0].skipped}")
+        return RowVerdict(Verdict.SKIPPED, f"reference: {ref_scores[0].skipped}")
     if out_score.blocked_rule is not None:
-        return Verdict(
-            "skipped",
+        return RowVerdict(
+            Verdict.SKIPPED,
             f"the output breaks the decoder's rule ({out_score.blocked_rule}): it was not produced at these settings",
         )
     best_k, best = max(scored, key=lambda ks: (ks[1].score, -ks[0]))
     if math.isinf(best.score) and best.score < 0:
         rules = sorted({s.blocked_rule or "decoding rule" for _, s in scored})
-        return Verdict("blocked", "the decoder's rules forbid the reference: " + ", ".join(rules), best_k)
+        return RowVerdict(Verdict.BLOCKED, "the decoder's rules forbid the reference: " + ", ".join(rules), best_k)
     diff = best.score - out_score.score
     if diff > margin:
-        return Verdict("search", f"reference outscores output by {diff:.4f}", best_k)
+        return RowVerdict(Verdict.SEARCH, f"reference outscores output by {diff:.4f}", best_k)
     if diff < -margin:
-        return Verdict("model", f"output outscores reference by {-diff:.4f}", best_k)
-    return Verdict("tie", f"scores within the tie margin {margin:g}", best_k)
+        return RowVerdict(Verdict.MODEL, f"output outscores reference by {-diff:.4f}", best_k)
+    return RowVerdict(Verdict.TIE, f"scores within the tie margin {margin:g}", best_k)

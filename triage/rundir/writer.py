@@ -17,6 +17,10 @@ import tempfile
 from pathlib import Path
 from typing import Any
 
+from triage.decision import recommend
+from triage.errors import OptionError
+from triage.run.summary import Summary
+
 FILES = ("verdicts.csv", "summary.json", "tokens.jsonl", "run.json", "report.html")
 
 
@@ -38,6 +42,17 @@ def _clean(obj: Any) -> Any:
 
 def dumps(obj: Any) -> str:
     return json.dumps(_clean(obj), indent=2, ensure_ascii=False, allow_nan=False) + "\n"
+
+
+def check_out_dir(out_dir: Path) -> None:
+    """Refuse an output folder that cannot be made or written, without making it yet."""
+    there = out_dir
+    while not there.exists() and there != there.parent:
+        there = there.parent
+    if not there.is_dir():
+        raise OptionError(f"--out {out_dir}: cannot make the folder, {there} is a file")
+    if not os.access(there, os.W_OK | os.X_OK):
+        raise OptionError(f"--out {out_dir}: no permission to write in {there}")
 
 
 def _open_temp(folder: Path, name: str) -> tuple[str, Any]:
@@ -127,13 +142,17 @@ class RunWriter:
         """A pipeline step (pipeline.ChunkResult), as run_triage's on_step hands it over."""
         self.add(part.verdicts, part.tokens)
 
-    def finish(self, summary: dict[str, Any], run_info: dict[str, Any] | None = None) -> Path:
+    def finish(self, summary: Summary, run_info: dict[str, Any] | None = None) -> Path:
+        """Write summary.json, run.json and report.html and move every file into place. A summary
+        whose recommendation is not decided yet (a run_triage result) gets it decided here."""
         from triage.report.page import render_page
 
+        if summary.recommendation is None:
+            summary.recommendation = recommend(summary)
         run_info = run_info or {}
         self._temp("verdicts.csv")
         self._temp("tokens.jsonl")
-        for name, text in (("summary.json", dumps(summary)), ("run.json", dumps(run_info)),
+        for name, text in (("summary.json", dumps(summary.to_json())), ("run.json", dumps(run_info)),
                            ("report.html", render_page(summary, self.page, run_info))):
             self._temp(name).write(text)
         for _, fh in self._files.values():
