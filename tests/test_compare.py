@@ -271,9 +271,12 @@ BROKEN = {
     "no-verdicts": (lambda r: (r / "verdicts.csv").unlink(), "verdicts.csv: missing"),
     "summary-cut-off": (lambda r: (r / "summary.json").write_text((r / "summary.json").read_text()[:300]),
                         "summary.json:"),
-    "summary-not-object": (lambda r: (r / "summary.json").write_text("[1, 2]\n"), "expected a JSON object"),
+    "summary-not-object": (lambda r: (r / "summary.json").write_text("[1, 2]\n"), "not a run summary"),
     "summary-no-sha": (lambda r: (r / "summary.json").write_text(json.dumps(
-        {k: v for k, v in json.loads((r / "summary.json").read_text()).items() if k != "data"})), "'data.sha256'"),
+        {k: v for k, v in json.loads((r / "summary.json").read_text()).items() if k != "data"})), "no 'data'"),
+    "summary-null-sha": (lambda r: (r / "summary.json").write_text(json.dumps(
+        {**json.loads((r / "summary.json").read_text()), "data": {**json.loads((r / "summary.json").read_text())["data"],
+                                                                   "sha256": None}})), "no data sha256"),
     "verdicts-cut-off": (lambda r: _edit_csv(r, lambda f: f.iloc[:30]), "30 rows, but summary.json says"),
     "verdicts-no-column": (lambda r: _edit_csv(r, lambda f: f.drop(columns=["output"])), "no column 'output'"),
     "verdicts-bad-verdict": (lambda r: _edit_csv(r, lambda f: f.assign(verdict=f["verdict"].where(

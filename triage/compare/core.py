@@ -218,22 +218,22 @@ def _int(x: Any) -> int | None:
 
 def _side(rf: RunFolder, label: str) -> RunSide:
     s, st, md, data = rf.summary, rf.settings, rf.model, rf.data
-    rec = s.get("recommendation") or {}
-    counts = {v: int(s["counts"].get(v, 0)) for v in VERDICT_ORDER}
-    cm = s.get("corpus_metric") or {}
+    rec = s.recommendation
+    counts = {v: int(s.counts.get(v, 0)) for v in VERDICT_ORDER}
     return RunSide(
         label=label, folder=str(rf.path), created=rf.run_info.get("created"), command=rf.run_info.get("command"),
-        data_path=data.get("path"), data_sha256=str(data["sha256"]), rows=int(data["rows"]),
-        outputs=data.get("outputs"), model_path=md.get("path") or md.get("spec"),
-        model_sha256=md.get("sha256"), model_fingerprint=md.get("fingerprint"), objective=s.get("objective"),
-        beam=_int(st.get("beam")), penalty=st.get("penalty"), alpha=_num(st.get("alpha")), metric=rf.metric,
-        corpus_metric=_num(cm.get("score")), action=str(rec.get("action")), because=str(rec.get("because", "")),
-        counts=counts, failed=sum(n for v, n in counts.items() if v != "correct"),
+        data_path=data.path, data_sha256=str(data.sha256), rows=int(data.rows), outputs=data.outputs,
+        model_path=md.get("path") or md.get("spec"), model_sha256=md.get("sha256"),
+        model_fingerprint=md.get("fingerprint"), objective=s.objective, beam=_int(st.get("beam")),
+        penalty=st.get("penalty"), alpha=_num(st.get("alpha")), metric=rf.metric,
+        corpus_metric=_num(s.corpus_metric.score), action=str(rec.action) if rec else "none",
+        because=rec.because if rec else "", counts=counts,
+        failed=sum(n for v, n in counts.items() if v != "correct"),
     )
 
 
 def _match(a: RunFolder, b: RunFolder, allow_different_data: bool) -> tuple[pd.DataFrame, Rows]:
-    sha_a, sha_b = a.data["sha256"], b.data["sha256"]
+    sha_a, sha_b = a.data.sha256, b.data.sha256
     same = sha_a == sha_b
     if not same and not allow_different_data:
         raise DataMismatchError(
@@ -275,7 +275,7 @@ def _bucket_side(part: pd.DataFrame, col: str) -> BucketSide:
 
 def buckets(m: pd.DataFrame, a: RunFolder, b: RunFolder) -> tuple[BucketRow, ...]:
     """Per length bucket (each run's own bucket of the row), over the matched rows."""
-    order = [bk.get("range") for bk in a.summary.get("buckets") or [] if isinstance(bk, dict)]
+    order = [bk.range for bk in a.summary.buckets]
     order += [r for r in (*m["bucket_a"].unique(), *m["bucket_b"].unique()) if r not in order]
     out = []
     for r in order:
@@ -317,14 +317,14 @@ def _data_references(rf: RunFolder, ids: list[str]) -> list[list[str]] | None:
     """Every reference of each row, from the run's data file when it is still there unchanged."""
     from triage.data.devset import read_devset
 
-    path = rf.data.get("path")
+    path = rf.data.path
     if not path or not Path(path).is_file():
         return None
     try:
-        dev = read_devset(path, fmt=rf.data.get("format"))
+        dev = read_devset(path, fmt=rf.data.format)
     except (TriageError, OSError, ValueError):
         return None
-    if dev.sha256 != rf.data["sha256"]:
+    if dev.sha256 != rf.data.sha256:
         return None
     refs = {str(i): list(r) for i, r in zip(dev.frame["id"], dev.frame["references"], strict=True)}
     if not all(i in refs for i in ids):
@@ -337,7 +337,7 @@ def corpus_metric(m: pd.DataFrame, a: RunFolder, labels: tuple[str, str], resamp
     ids = m["id"].tolist()
     refs = _data_references(a, ids)
     if refs is not None:
-        where = f"every reference of each row, read from {a.data.get('path')} (sha256 as in {labels[0]}'s run)"
+        where = f"every reference of each row, read from {a.data.path} (sha256 as in {labels[0]}'s run)"
         complete, note = True, None
     else:
         refs = [[r] for r in m["reference_a"]]
@@ -382,6 +382,7 @@ ACTION_WORDS = {
     "fix-model": "work on the model",
     "tune-length-penalty": "tune the length penalty",
     "inconclusive": "no clear action",
+    "none": "nothing (the run holds no recommendation)",
 }
 
 
@@ -468,11 +469,12 @@ def compare_runs(run_a: str | Path, run_b: str | Path, labels: tuple[str, str] =
     if a.metric != b.metric:
         notes.append(f"The runs used different metrics ({a.metric}, {b.metric}); both are measured here "
                      f"with {a.metric}.")
-    oa, ob = a.summary.get("options") or {}, b.summary.get("options") or {}
+    oa, ob = a.summary.options, b.summary.options
     for key, what in (("below", "failure threshold"), ("margin", "tie margin"), ("bucket_edges", "length buckets"),
                       ("bucket_by", "length measure")):
-        if oa.get(key) != ob.get(key):
-            notes.append(f"The {what} differs ({oa.get(key)} in {labels[0]}, {ob.get(key)} in {labels[1]}).")
+        xa, xb = getattr(oa, key, None), getattr(ob, key, None)
+        if xa != xb:
+            notes.append(f"The {what} differs ({xa} in {labels[0]}, {xb} in {labels[1]}).")
     t = metric.test
     if t is not None and side_a.corpus_metric is not None and metric.complete and rows.same_data \
             and abs(t.score_a - side_a.corpus_metric) > 1e-6:

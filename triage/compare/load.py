@@ -1,4 +1,5 @@
-"""Reading one run folder for a comparison: summary.json, verdicts.csv and run.json, checked.
+"""Reading one run folder for a comparison: summary.json (through triage.rundir.reader, into a typed
+Summary), verdicts.csv and run.json, checked.
 
 No model is needed. Every problem with a file ends in one line naming the file and what is
 wrong (a RunFolderError, exit code 2), never a traceback and never a silently dropped row.
@@ -15,7 +16,9 @@ from typing import Any
 import pandas as pd
 
 from triage.errors import TriageError
+from triage.run.summary import DataInfo, Summary
 from triage.run.verdicts import VERDICTS
+from triage.rundir.reader import read_run_info, read_summary
 
 # the verdicts.csv columns a comparison reads (the metric's own column is checked by name below)
 NEEDED_COLUMNS = ("id", "line", "verdict", "bucket", "source", "reference", "output")
@@ -30,66 +33,64 @@ class RunFolder:
     """One run's files as the comparison reads them."""
 
     path: Path
-    summary: dict[str, Any]
+    summary: Summary
     verdicts: pd.DataFrame  # every cell text, as written ("" for an empty cell)
     run_info: dict[str, Any] = field(default_factory=dict)
 
     @property
     def metric(self) -> str:
-        opts = self.summary.get("options") or {}
-        cm = self.summary.get("corpus_metric") or {}
-        return str(opts.get("metric") or cm.get("name") or "chrf")
+        return str(self.summary.options.metric or self.summary.corpus_metric.name or "chrf")
 
     @property
     def settings(self) -> dict[str, Any]:
-        return self.summary.get("settings") or {}
+        return self.summary.settings
 
     @property
     def model(self) -> dict[str, Any]:
-        return self.summary.get("model") or {}
+        return self.summary.model
 
     @property
-    def data(self) -> dict[str, Any]:
-        return self.summary.get("data") or {}
+    def data(self) -> DataInfo:
+        return self.summary.data
 
 
-def _json(path: Path, required: bool) -> dict[str, Any]:
-    if not path.is_file():
-        if required:
-            raise RunFolderError("missing (not a run folder, or the run did not finish)", path=str(path))
-        return {}
+def _read_json(path: Path, read):
+    """read(folder) through the run-folder reader, its failures turned into one line about `path`."""
     try:
-        obj = json.loads(path.read_text(encoding="utf-8"))
+        return read(path.parent)
     except UnicodeDecodeError as exc:
         raise RunFolderError(f"not UTF-8 text (byte {exc.start})", path=str(path)) from None
     except json.JSONDecodeError as exc:
         raise RunFolderError(f"not valid JSON: {exc.msg} at column {exc.colno}", path=str(path),
                              line=exc.lineno) from None
-    if not isinstance(obj, dict):
-        raise RunFolderError(f"expected a JSON object, found {type(obj).__name__}", path=str(path))
-    return obj
+    except KeyError as exc:
+        raise RunFolderError(f"no {exc.args[0]!r} (a cut-off or edited file?)", path=str(path)) from None
+    except (TypeError, ValueError, AttributeError) as exc:
+        raise RunFolderError(f"not a run summary this version can read ({' '.join(str(exc).split())})",
+                             path=str(path)) from None
 
 
-def _check_summary(path: Path, s: dict[str, Any]) -> None:
-    def need(dotted: str, kind: type | tuple[type, ...]) -> Any:
-        d: Any = s
-        for part in dotted.split("."):
-            if not isinstance(d, dict) or part not in d:
-                raise RunFolderError(f"no {dotted!r} (a cut-off or edited summary?)", path=str(path))
-            d = d[part]
-        if not isinstance(d, kind) or isinstance(d, bool) and kind is int:
-            raise RunFolderError(f"{dotted!r} should be {getattr(kind, '__name__', kind)}, found {d!r}",
-                                 path=str(path))
-        return d
-
-    need("data.sha256", str)
-    need("data.rows", int)
-    need("settings", dict)
-    counts = need("counts", dict)
-    for verdict, n in counts.items():
+def _summary(path: Path) -> Summary:
+    if not path.is_file():
+        raise RunFolderError("missing (not a run folder, or the run did not finish)", path=str(path))
+    s = _read_json(path, read_summary)
+    if not isinstance(s.data.sha256, str) or not s.data.sha256:
+        raise RunFolderError("no data sha256 (the dev set it was run on is unknown)", path=str(path))
+    if not isinstance(s.data.rows, int) or isinstance(s.data.rows, bool) or s.data.rows < 0:
+        raise RunFolderError(f"data.rows should be a row count, found {s.data.rows!r}", path=str(path))
+    if not isinstance(s.settings, dict):
+        raise RunFolderError("settings should be an object", path=str(path))
+    for verdict, n in s.counts.items():
         if verdict not in VERDICTS or not isinstance(n, int) or isinstance(n, bool) or n < 0:
             raise RunFolderError(f"counts.{verdict} = {n!r} is not a verdict count", path=str(path))
-    need("recommendation.action", str)
+    return s
+
+
+def _run_info(path: Path) -> dict[str, Any]:
+    info = _read_json(path, read_run_info)
+    if not isinstance(info, dict):
+        raise RunFolderError(f"expected a JSON object, found {type(info).__name__}", path=str(path))
+    return info
 
 
 def _read_verdicts(path: Path, metric: str) -> pd.DataFrame:
@@ -129,20 +130,18 @@ def load_run_folder(path: str | Path) -> RunFolder:
         raise RunFolderError("no such run folder", path=str(folder))
     if not folder.is_dir():
         raise RunFolderError("not a folder (give the run's output folder)", path=str(folder))
-    summary_path = folder / "summary.json"
-    summary = _json(summary_path, required=True)
-    _check_summary(summary_path, summary)
-    run_info = _json(folder / "run.json", required=False)
+    summary = _summary(folder / "summary.json")
+    run_info = _run_info(folder / "run.json")
     rf = RunFolder(folder, summary, pd.DataFrame(), run_info)
     verdicts_path = folder / "verdicts.csv"
     frame = _read_verdicts(verdicts_path, rf.metric)
-    rows = summary["data"]["rows"]
+    rows = summary.data.rows
     if len(frame) != rows:
         raise RunFolderError(f"{len(frame)} rows, but summary.json says the dev set has {rows} "
                              "(a cut-off or mixed-up file?)", path=str(verdicts_path))
     seen = frame["verdict"].value_counts()
     for verdict in VERDICTS:
-        said = int(summary["counts"].get(verdict, 0))
+        said = int(summary.counts.get(verdict, 0))
         if int(seen.get(verdict, 0)) != said:
             raise RunFolderError(f"{int(seen.get(verdict, 0))} rows are {verdict!r}, but summary.json counts "
                                  f"{said} (the two files come from different runs?)", path=str(verdicts_path))
