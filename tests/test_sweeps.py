@@ -233,3 +233,62 @@ def test_recommend_weighs_the_metric_and_names_missing_evidence():
     assert recommend(counts)["missing"] == ["re-decoding with a wider beam (--widen)"]
     split = recommend({"search": 9, "model": 9, "tie": 2})
     assert split["action"] == "inconclusive" and len(split["missing"]) == 2
+
+
+def test_study_sections_read_back_as_written_and_match_the_shipped_schema(tiny, widen_plant):
+    """Each study's typed section writes summary.json's section and reads it back unchanged; every
+    section validates against the schema shipped in the package (checked with jsonschema)."""
+    import copy
+    import dataclasses
+    import json
+    from pathlib import Path
+
+    import jsonschema
+
+    import triage
+    from triage.report.page import sweep_blocks
+    from triage.studies import SECTIONS, STUDIES
+    from triage.studies.exact import exact_check
+    from triage.studies.runner import run_studies
+    from triage.studies.where_lost import where_lost
+
+    tm, s, src, ids = tiny
+    result, sweeps, planted = widen_plant
+    part = dataclasses.replace(result, verdicts=result.verdicts.copy(), summary=copy.copy(result.summary))
+    done = run_studies(tm, part, alphas=[0.0, 0.5, 1.0], progress=False)
+    part.summary.where_lost = where_lost(tm, part, max_width=8)  # small budgets keep the test short
+    part.summary.exact = exact_check(tm, part, max_tokens=8, max_nodes=200, max_seconds=0.2)
+    sections = {"widen": sweeps["widen"], "beam_curve": sweeps["beam_curve"],
+                "length_penalty": done.sections["length_penalty"].to_json(),
+                "where_lost": part.summary.where_lost.to_json(), "exact": part.summary.exact.to_json()}
+    assert set(sections) == set(SECTIONS) == set(STUDIES)
+    schema = json.loads((Path(triage.__file__).parent / "run" / "summary.schema.json").read_text(encoding="utf-8"))
+    for key, written in sections.items():
+        text = json.dumps(written)  # through the json module, as the run folder's writer does
+        typed = SECTIONS[key].from_json(json.loads(text))
+        assert json.dumps(typed.to_json()) == text, key  # same keys, same order, same values
+        jsonschema.validate(written, schema["properties"][key])
+        # the report shows a typed section and the same section read from JSON alike
+        assert sweep_blocks({key: typed}) == sweep_blocks({key: json.loads(text)}), key
+    widen = SECTIONS["widen"].from_json(sections["widen"])
+    by_hand = max(sections["widen"]["widths"], key=lambda w: (w["resolved_share"], -w["beam"]))
+    assert widen.best_width().beam == by_hand["beam"] == 8
+    assert widen.best_width().model_rows.worse == by_hand["model_rows"]["worse"]
+    assert widen.best_width().sentence_delta.search == by_hand["sentence_delta"]["search"]
+    lp = done.sections["length_penalty"]
+    assert lp.best.flip_share == sections["length_penalty"]["best"]["flip_share"]
+    assert [c.alpha for c in lp.grid] == [0.0, 0.5, 1.0, 0.0, 0.5, 1.0]  # power, then gnmt
+    assert sections["where_lost"]["rows"] == len(planted)  # every planted row is search-side
+    assert part.summary.exact.budget_reached == sections["exact"]["budget reached"]
+
+
+def test_a_section_of_another_shape_reads_leniently_or_raises():
+    from triage.studies import SECTIONS
+
+    partial = SECTIONS["widen"].from_json({"metric": "bleu", "rows": {"search": 3}})
+    assert partial.rows.search == 3 and partial.rows.model is None and partial.widths == [] and partial.current is None
+    for bad in ({"widths": "not a list"}, {"rows": 7}, {"widths": [1, 2]}):
+        with pytest.raises(TypeError):
+            SECTIONS["widen"].from_json(bad)
+    # where_lost without search-side rows writes two keys only; they read back as two keys
+    assert SECTIONS["where_lost"].from_json({"rows": 0, "max_width": 64}).to_json() == {"rows": 0, "max_width": 64}
