@@ -7,6 +7,7 @@ them; nothing here knows HTML. Bottom layer: imports nothing from the rest of tr
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import math
 from dataclasses import dataclass, field
@@ -82,7 +83,7 @@ def get_path(d: Any, path: str) -> Any:
             d = d.get(part)
         elif isinstance(d, list) and part.isdigit() and int(part) < len(d):
             d = d[int(part)]
-        elif d is not None and not isinstance(d, (list, str, int, float)) and hasattr(d, part):
+        elif dataclasses.is_dataclass(d) and not isinstance(d, type) and part in {f.name for f in dataclasses.fields(d)}:
             d = getattr(d, part)
         else:
             return None

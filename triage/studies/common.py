@@ -4,7 +4,10 @@ and re-scoring from recorded log-prob sums.
 A study's section is a dataclass whose fields are its keys in summary.json, in the order written.
 `to_json()` gives that JSON object (nested sections too); `from_json()` reads it back. A field whose
 key is not a name ("budget reached") says so in its metadata; a field that is left out of the
-JSON when unset (None) is marked `omit_none`.
+JSON when unset (None) is marked `omit_none`. Reading is lenient about absent keys (a section
+of another writer may lack some: they read as the field's default, else None) and strict about
+shapes (a list where an object belongs raises TypeError), so a reader can fall back to showing
+the section as it is.
 """
 
 from __future__ import annotations
@@ -64,9 +67,13 @@ def _from_json(tp: Any, value: Any) -> Any:
         inner = [a for a in typing.get_args(tp) if a is not type(None)]
         return _from_json(inner[0], value) if len(inner) == 1 else value
     if origin is list:
+        if not isinstance(value, list):
+            raise TypeError(f"expected a list, got {type(value).__name__}")
         (item,) = typing.get_args(tp) or (Any,)
         return [_from_json(item, v) for v in value]
     if origin is dict:
+        if not isinstance(value, dict):
+            raise TypeError(f"expected an object, got {type(value).__name__}")
         _, item = typing.get_args(tp) or (str, Any)
         return {k: _from_json(item, v) for k, v in value.items()}
     if isinstance(tp, type) and issubclass(tp, Section):
@@ -89,13 +96,18 @@ class Section:
 
     @classmethod
     def from_json(cls, d: dict[str, Any]):
-        """The section read back from summary.json; a key that is absent takes the field's default."""
+        """The section read back from summary.json. An absent key takes the field's default (None
+        when it has none); a value of the wrong shape raises TypeError."""
+        if not isinstance(d, dict):
+            raise TypeError(f"{cls.__name__}: expected an object, got {type(d).__name__}")
         hints = typing.get_type_hints(cls)
         kw = {}
         for f in dataclasses.fields(cls):  # type: ignore[arg-type]
             k = _json_key(f)
             if k in d:
                 kw[f.name] = _from_json(hints[f.name], d[k])
+            elif f.default is dataclasses.MISSING and f.default_factory is dataclasses.MISSING:
+                kw[f.name] = None
         return cls(**kw)
 
 
