@@ -4,7 +4,7 @@ What is checked:
 - the corpus metric built from summed per-segment statistics equals sacrebleu's own
   `corpus_score` over the whole corpus (sacrebleu is the reference), for any split;
 - a streamed CLI run writes byte for byte the files of the in-memory library run
-  (read_devset + run_triage + run_sweeps + write_run) with the same step size;
+  (read_devset + run_triage + run_studies + write_run) with the same step size;
 - the step size changes no verdict, count or bucket (scores move in float32's last bits only);
 - the page of a large run keeps the first rows of each verdict and says so; re-rendering
   from the run folder (read in parts) gives the same page;
@@ -26,8 +26,8 @@ from tinymodels import WORDS, sentences
 from triage.cli import main
 from triage.data.devset import read_devset, stream_devset
 from triage.errors import InputError
-from triage.report import page as report
 from triage.run.metrics import CorpusStats
+from triage.rundir import reader as report
 from triage.rundir.writer import RunWriter, write_run
 
 DETERMINISTIC = ("verdicts.csv", "summary.json", "tokens.jsonl")
@@ -75,11 +75,11 @@ def test_summed_statistics_equal_sacrebleu_corpus_score(rows, cuts, name):
 
 # ---------------------------------------------------------------------------------------- same files
 def test_streamed_cli_run_writes_the_files_of_the_in_memory_run(tmp_path, tiny_model_dir, capsys):
+    from triage.decision import recommend
     from triage.models.describe import model_info
     from triage.models.loading import load_model
-    from triage.run.analysis import recommend
     from triage.run.pipeline import TriageOptions, run_triage
-    from triage.studies.runner import run_sweeps
+    from triage.studies.runner import run_studies
 
     dev = _devset(tmp_path / "dev.csv")
     streamed = tmp_path / "streamed"
@@ -92,8 +92,8 @@ def test_streamed_cli_run_writes_the_files_of_the_in_memory_run(tmp_path, tiny_m
     result = run_triage(model, devset, options=TriageOptions(progress=False, chunk_rows=7),
                         model_info=model_info(model, str(tiny_model_dir)))
     assert len(result.verdicts) == 90 and result.verdicts["verdict"].nunique() >= 3
-    result.summary.update(run_sweeps(model, result, progress=False, devset=devset, length_penalty=True))
-    result.summary["recommendation"] = recommend(result.summary["counts"], result.summary)
+    run_studies(model, result, progress=False, devset=devset, length_penalty=True).into(result.summary)
+    result.summary.recommendation = recommend(result.summary)
     memory = write_run(result, tmp_path / "memory", {})
     for name in DETERMINISTIC:
         assert (streamed / name).read_bytes() == (memory / name).read_bytes(), name

@@ -6,6 +6,7 @@ does to them is known in advance.
 
 from __future__ import annotations
 
+import copy
 import math
 
 import pandas as pd
@@ -14,14 +15,15 @@ import torch
 from sacrebleu.metrics import CHRF
 from tinymodels import make_marian, sentences
 
+from triage.decision import Evidence, recommend, weigh
 from triage.decoding.decode import decode
 from triage.errors import OptionError
 from triage.models.describe import model_settings
 from triage.models.transformers_backend import TransformersModel
-from triage.run.analysis import recommend
 from triage.run.pipeline import TriageOptions, run_triage
+from triage.studies import WidenSection
 from triage.studies.plan import estimate_seconds, parse_alphas, parse_widths
-from triage.studies.runner import merge_sweeps, run_sweeps
+from triage.studies.runner import run_studies
 
 N = 32
 MAX_NEW = 24
@@ -42,6 +44,13 @@ def tiny():
     torch.set_num_threads(threads)
 
 
+def _decided(result, done):
+    """The recommendation of the result's summary with the studies' sections in it (a copy)."""
+    summary = copy.copy(result.summary)
+    done.into(summary)
+    return recommend(summary)
+
+
 def _frame(src, refs, outs):
     return pd.DataFrame({"id": [f"r{i}" for i in range(len(src))], "source": src,
                          "references": [[r] for r in refs], "output": outs})
@@ -56,15 +65,15 @@ def widen_plant(tiny):
     planted = [i for i in range(N) if d8[i].finished and d8[i].text != d2[i].text and d8[i].score > d2[i].score]
     refs = [d8[i].text if i in planted else d2[i].text for i in range(N)]
     result = run_triage(tm, _frame(src, refs, [d.text for d in d2]), s, OPTS)
-    sweeps = run_sweeps(tm, result, widen=[8], beam_curve_max=2, progress=False)
-    return result, sweeps, planted
+    done = run_studies(tm, result, widen=[8], beam_curve_max=2, progress=False)
+    return result, done, planted
 
 
 def test_widen_records_what_generate_returns(tiny, widen_plant):
     tm, s, src, ids = tiny
-    result, sweeps, planted = widen_plant
+    result, done, planted = widen_plant
     assert len(planted) >= 10
-    table = sweeps.tables["widen"]
+    table = done.tables["widen"]
     assert sorted(table["row"]) == planted  # only the failed rows are re-decoded
     for rec in table.head(12).itertuples():  # a dozen rows keep the test fast
         # transformers' own beam search, one row at a time, as the source of truth
@@ -80,12 +89,12 @@ def test_widen_records_what_generate_returns(tiny, widen_plant):
 
 
 def test_widen_shares_follow_from_recorded_scores(tiny, widen_plant):
-    result, sweeps, planted = widen_plant
-    w = sweeps["widen"]
-    entry = w["widths"][0]
-    table = sweeps.tables["widen"]
+    result, done, planted = widen_plant
+    w = done.sections["widen"]
+    entry = w.widths[0]
+    table = done.tables["widen"]
     margin = result.options.margin
-    assert result.summary["counts"]["search"] == len(planted)
+    assert result.summary.counts["search"] == len(planted)
     # reference score at width 8 recomputed from the recorded log-probs: sum / len**alpha, with len
     # counting the end token (transformers' BeamHypotheses.add, measured in test_scoring)
     for rec in table.itertuples():
@@ -94,35 +103,35 @@ def test_widen_shares_follow_from_recorded_scores(tiny, widen_plant):
         assert rec.ref_score == pytest.approx(math.fsum(lp) / len(lp) ** 1.0, abs=1e-6)
     search = table[table["verdict"] == "search"]
     resolved = ((search["score"] >= search["ref_score"] - margin) | search["equals_reference"]).sum()
-    assert entry["resolved"] == resolved
-    assert entry["resolved_share"] == pytest.approx(resolved / len(search))
+    assert entry.resolved == resolved
+    assert entry.resolved_share == pytest.approx(resolved / len(search))
     # every planted reference is the beam-8 output, so each one is found and counts as resolved
     assert search["equals_reference"].all() and search["resolved"].all()
-    assert entry["resolved_share"] == 1.0
+    assert entry.resolved_share == 1.0
     # corpus metric recomputed with sacrebleu: failed rows take the widened output, the others keep theirs
     outputs = result.verdicts["output"].tolist()
     for rec in table.itertuples():
         outputs[rec.row] = rec.output
     refs = [result.verdicts["reference"].tolist()]
-    assert entry["corpus_after"] == pytest.approx(CHRF().corpus_score(outputs, refs).score, abs=1e-9)
+    assert entry.corpus_after == pytest.approx(CHRF().corpus_score(outputs, refs).score, abs=1e-9)
     before = CHRF().corpus_score(result.verdicts["output"].tolist(), refs).score
-    assert entry["corpus_delta"] == pytest.approx(entry["corpus_after"] - before, abs=1e-9)
-    assert entry["corpus_delta"] > 0
-    assert entry["seconds_per_row"] > 0 and entry["time_ratio"] > 0
-    assert w["current"]["reproduced_share"] == 1.0  # the given outputs are the model's beam-2 outputs
-    rec = merge_sweeps(result.summary, sweeps)
-    assert set(rec) == {"widen", "beam_curve"}
-    assert result.summary["recommendation"]["action"] == "widen-beam"
-    assert "widen to 8: resolves 100% of search-side rows" in result.summary["recommendation"]["because"]
+    assert entry.corpus_delta == pytest.approx(entry.corpus_after - before, abs=1e-9)
+    assert entry.corpus_delta > 0
+    assert entry.seconds_per_row > 0 and entry.time_ratio > 0
+    assert w.current.reproduced_share == 1.0  # the given outputs are the model's beam-2 outputs
+    assert set(done.tables) == {"widen", "beam_curve"}
+    rec = _decided(result, done)
+    assert rec.action == "widen-beam"
+    assert "widen to 8: resolves 100% of search-side rows" in rec.because
 
 
 def test_beam_width_one_is_greedy(tiny, widen_plant):
     """Beam width 1 is greedy search (common practice): the arg-max token at every step."""
     tm, s, src, ids = tiny
-    result, sweeps, _ = widen_plant
-    curve = sweeps["beam_curve"]
-    assert [p["beam"] for p in curve["points"]] == [1, 2]
-    table = sweeps.tables["beam_curve"]
+    result, done, _ = widen_plant
+    curve = done.sections["beam_curve"]
+    assert [p.beam for p in curve.points] == [1, 2]
+    table = done.tables["beam_curve"]
     greedy_texts = []
     with torch.no_grad():
         for row in ids[:16]:
@@ -138,7 +147,7 @@ def test_beam_width_one_is_greedy(tiny, widen_plant):
     at1 = table[table["beam"] == 1].sort_values("row")["output"].tolist()
     assert at1[:16] == greedy_texts
     refs = [result.verdicts["reference"].tolist()]
-    assert curve["points"][0]["corpus"] == pytest.approx(CHRF().corpus_score(at1, refs).score, abs=1e-9)
+    assert curve.points[0].corpus == pytest.approx(CHRF().corpus_score(at1, refs).score, abs=1e-9)
     at2 = table[table["beam"] == 2].sort_values("row")["output"].tolist()
     assert at2 == result.verdicts["output"].tolist()  # width 2 is the current decoder
 
@@ -147,20 +156,19 @@ def test_mostly_model_failures_recommend_fixing_the_model(tiny):
     tm, s, src, ids = tiny
     outs = [d.text for d in decode(tm, s, ids, batch_size=64)]
     result = run_triage(tm, _frame(src, sentences(N, seed=7), outs), s, OPTS)  # random references
-    assert result.summary["counts"]["model"] >= 0.8 * N
-    sweeps = run_sweeps(tm, result, widen=[4], length_penalty=True, progress=False)
-    merge_sweeps(result.summary, sweeps)
-    rec = result.summary["recommendation"]
-    assert rec["action"] == "fix-model", rec
-    assert "model-side" in rec["because"] and "widening to 4" in rec["because"]
+    assert result.summary.counts["model"] >= 0.8 * N
+    done = run_studies(tm, result, widen=[4], length_penalty=True, progress=False)
+    rec = _decided(result, done)
+    assert rec.action == "fix-model", rec
+    assert "model-side" in rec.because and "widening to 4" in rec.because
     # flips recomputed by hand for one grid point: gnmt ((5+len)/6)**alpha (formula from memory)
-    g = next(x for x in sweeps["length_penalty"]["grid"] if x["penalty"] == "gnmt" and x["alpha"] == 0.6)
+    g = next(x for x in done.sections["length_penalty"].grid if x.penalty == "gnmt" and x.alpha == 0.6)
     flips = 0
     for i, (refs, out) in result.scores.items():
         ref = max(r.logprob_sum / ((5 + r.length) / 6) ** 0.6 for r in refs)
         o = out.logprob_sum / ((5 + out.length) / 6) ** 0.6
         flips += result.verdicts["verdict"].iat[i] == "model" and ref - o > result.options.margin
-    assert g["model_to_search"] == flips
+    assert g.model_to_search == flips
 
 
 def test_short_model_side_outputs_recommend_the_length_penalty(tiny):
@@ -173,18 +181,17 @@ def test_short_model_side_outputs_recommend_the_length_penalty(tiny):
     assert len(planted) >= 10
     refs = [long[i].text if i in planted else short[i].text for i in range(N)]
     result = run_triage(tm, _frame(src, refs, [d.text for d in short]), s0, OPTS)
-    sweeps = run_sweeps(tm, result, length_penalty=True, redecode_alpha=[1.2], progress=False)
-    lp = sweeps["length_penalty"]
-    assert lp["brevity"]["short_share"] >= 0.5
-    assert lp["best"]["flip_share"] >= 0.3
+    done = run_studies(tm, result, length_penalty=True, redecode_alpha=[1.2], progress=False)
+    lp = done.sections["length_penalty"]
+    assert lp.brevity.short_share >= 0.5
+    assert lp.best.flip_share >= 0.3
     # the redecoded verdicts come from a real second triage at alpha 1.2: the planted rows now match
-    red = lp["redecode"][0]
-    assert red["counts"]["correct"] >= len(planted)
-    assert red["corpus_delta"] > 0
-    merge_sweeps(result.summary, sweeps)
-    rec = result.summary["recommendation"]
-    assert rec["action"] == "tune-length-penalty", rec
-    assert "missing" not in rec
+    red = lp.redecode[0]
+    assert red.counts["correct"] >= len(planted)
+    assert red.corpus_delta > 0
+    rec = _decided(result, done)
+    assert rec.action == "tune-length-penalty", rec
+    assert rec.missing is None and "missing" not in rec.to_json()
 
 
 def test_interrupt_keeps_finished_widths_and_estimate(tiny, widen_plant, monkeypatch):
@@ -204,10 +211,10 @@ def test_interrupt_keeps_finished_widths_and_estimate(tiny, widen_plant, monkeyp
         return real(model, settings, src, **kw)
 
     monkeypatch.setattr(sw, "decode", stop_at_six)
-    out = run_sweeps(tm, result, widen=[4, 6], max_rows=5, seed=3, progress=False)
-    assert out["sweeps_interrupted"] and out["widen"]["interrupted"]
-    assert [w["beam"] for w in out["widen"]["widths"]] == [4]
-    assert out["widen"]["rows"]["redecoded"] == 5 and out["widen"]["rows"]["sampled"]
+    out = run_studies(tm, result, widen=[4, 6], max_rows=5, seed=3, progress=False)
+    assert out.interrupted and out.sections["widen"].interrupted
+    assert [w.beam for w in out.sections["widen"].widths] == [4]
+    assert out.sections["widen"].rows.redecoded == 5 and out.sections["widen"].rows.sampled
     assert len(out.tables["widen"]) == 5
 
 
@@ -228,11 +235,11 @@ def test_recommend_weighs_the_metric_and_names_missing_evidence():
     counts = {"search": 15, "model": 5, "tie": 0}
     hurt = {"metric": "chrf", "widths": [{"beam": 8, "resolved_share": 0.6, "corpus_delta": -1.5, "time_ratio": 3.0,
                                           "model_rows": {"rows": 5, "worse": 4}}]}
-    r = recommend(counts, {"widen": hurt})
-    assert r["action"] == "inconclusive" and "-1.5 chrf" in r["because"] and "4 of 5 model-side" in r["because"]
-    assert recommend(counts)["missing"] == ["re-decoding with a wider beam (--widen)"]
-    split = recommend({"search": 9, "model": 9, "tie": 2})
-    assert split["action"] == "inconclusive" and len(split["missing"]) == 2
+    r = weigh(Evidence(counts, widen=WidenSection.from_json(hurt)))  # a section of another writer, read leniently
+    assert r.action == "inconclusive" and "-1.5 chrf" in r.because and "4 of 5 model-side" in r.because
+    assert weigh(Evidence(counts)).missing == ["re-decoding with a wider beam (--widen)"]
+    split = weigh(Evidence({"search": 9, "model": 9, "tie": 2}))
+    assert split.action == "inconclusive" and len(split.missing) == 2
 
 
 def test_study_sections_read_back_as_written_and_match_the_shipped_schema(tiny, widen_plant):
@@ -249,16 +256,15 @@ def test_study_sections_read_back_as_written_and_match_the_shipped_schema(tiny, 
     from triage.report.page import sweep_blocks
     from triage.studies import SECTIONS, STUDIES
     from triage.studies.exact import exact_check
-    from triage.studies.runner import run_studies
     from triage.studies.where_lost import where_lost
 
     tm, s, src, ids = tiny
-    result, sweeps, planted = widen_plant
+    result, done_plant, planted = widen_plant
     part = dataclasses.replace(result, verdicts=result.verdicts.copy(), summary=copy.copy(result.summary))
     done = run_studies(tm, part, alphas=[0.0, 0.5, 1.0], progress=False)
     part.summary.where_lost = where_lost(tm, part, max_width=8)  # small budgets keep the test short
     part.summary.exact = exact_check(tm, part, max_tokens=8, max_nodes=200, max_seconds=0.2)
-    sections = {"widen": sweeps["widen"], "beam_curve": sweeps["beam_curve"],
+    sections = {"widen": done_plant.sections["widen"].to_json(), "beam_curve": done_plant.sections["beam_curve"].to_json(),
                 "length_penalty": done.sections["length_penalty"].to_json(),
                 "where_lost": part.summary.where_lost.to_json(), "exact": part.summary.exact.to_json()}
     assert set(sections) == set(SECTIONS) == set(STUDIES)

@@ -6,6 +6,7 @@
     done.sections     # {"length_penalty": LengthPenaltySection, "widen": WidenSection, ...}
     done.tables       # per-row DataFrames {"widen": .., "beam_curve": ..}
     done.interrupted  # Ctrl-C cut a study: what finished is kept, the cut section says interrupted
+    done.into(result.summary)                                           # the sections into the Summary
     run_search_checks(model, result, where_lost_rows=True, exact=True)  # into result.summary
 
 The sections are typed (one module per study, see triage.studies.STUDIES); the recommendation
@@ -28,14 +29,19 @@ from triage.studies.length_penalty import PenaltyTally, sweep_length_penalty
 from triage.studies.where_lost import where_lost
 from triage.studies.widen import sweep_widen
 
-SUMMARY_KEYS = ("widen", "beam_curve", "length_penalty")  # the sections run_studies writes
-
 
 @dataclass
 class StudyResults:
     sections: dict[str, Section] = field(default_factory=dict)  # summary key -> section, in the order run
     tables: dict[str, pd.DataFrame] = field(default_factory=dict)
     interrupted: bool = False
+
+    def into(self, summary) -> None:
+        """Put the sections into a Summary (and whether a study was cut short); the recommendation
+        is decided afterwards, once, from the whole summary (triage.decision.recommend)."""
+        for key, section in self.sections.items():
+            setattr(summary, key, section)
+        summary.sweeps_interrupted = self.interrupted
 
 
 def run_studies(model, result, *, widen: Sequence[int] | None = None, beam_curve_max: int | None = None,
@@ -92,31 +98,3 @@ def run_search_checks(model, result, *, where_lost_rows: bool = False, exact: bo
         result.summary.where_lost = where_lost(model, result)
     if exact:
         result.summary.exact = exact_check(model, result)
-
-
-# --------------------------------------------------------------------------- the former interface
-class Sweeps(dict):
-    """run_sweeps' answer: the sections that ran as summary.json writes them, plus
-    "sweeps_interrupted"; `.tables` holds the per-row DataFrames. (run_studies gives the typed sections.)"""
-
-    def __init__(self, *args: Any, **kw: Any) -> None:
-        super().__init__(*args, **kw)
-        self.tables: dict[str, pd.DataFrame] = {}
-
-
-def run_sweeps(model, result, **kw: Any) -> Sweeps:
-    """run_studies, answered as JSON-ready sections (same keyword arguments)."""
-    done = run_studies(model, result, **kw)
-    out = Sweeps(sweeps_interrupted=done.interrupted, **{k: s.to_json() for k, s in done.sections.items()})
-    out.tables = dict(done.tables)
-    return out
-
-
-def merge_sweeps(summary, sweeps: dict[str, Any]) -> dict[str, pd.DataFrame]:
-    """Put the sweep sections into a Summary; returns the per-row tables. The recommendation is
-    decided afterwards, once, from the whole summary (triage.decision.recommend)."""
-    for key in SUMMARY_KEYS:
-        if key in sweeps:
-            setattr(summary, key, sweeps[key])
-    summary.sweeps_interrupted = bool(sweeps.get("sweeps_interrupted"))
-    return dict(getattr(sweeps, "tables", {}))
