@@ -104,10 +104,10 @@ def test_every_row_once_in_input_order(tm):
     rows = [(s, r, r if i % 3 == 0 else "bus") for i, (s, r) in enumerate(zip(srcs, refs, strict=True))]
     res = run_triage(tm, _frame(rows), options=TriageOptions(progress=False, token_budget=64))
     assert res.verdicts["id"].tolist() == [str(i) for i in range(25)]
-    counts = res.summary["counts"]
+    counts = res.summary.counts
     assert sum(counts.values()) == 25
     assert counts["correct"] == 9
-    assert sum(b["rows"] for b in res.summary["buckets"]) == 25
+    assert sum(b.rows for b in res.summary.buckets) == 25
 
 
 def test_blocked_reference_names_the_rule(tm):

@@ -14,8 +14,6 @@ from dataclasses import dataclass, field
 from enum import StrEnum
 from typing import Any, Protocol
 
-from triage.run.verdicts import Verdict
-
 
 class Action(StrEnum):
     """What the run recommends doing next."""
@@ -186,9 +184,6 @@ class Summary:
     where_lost: StudySection | None = None      # WhereLostSection
     exact: StudySection | None = None           # ExactSection
     extra: dict[str, Any] = field(default_factory=dict)  # keys of a newer or other writer, kept as read
-
-    def count(self, verdict: Verdict | str) -> int:
-        return int(self.counts.get(str(verdict), 0))
 
     def studies(self) -> dict[str, StudySection]:
         """The study sections that ran, by summary key, in summary.json's order."""
