@@ -24,7 +24,7 @@ from __future__ import annotations
 import math
 from array import array
 from collections.abc import Callable, Iterator, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import pandas as pd
@@ -53,7 +53,15 @@ from triage.run.summary import (
     Tool,
 )
 from triage.run.verdicts import COMPARED, FAILED, VERDICTS, decide, matches_any
-from triage.scoring.scorer import ScoreRequest, TargetScore, score_requests, source_problem
+from triage.scoring.scorer import (
+    ScoreRequest,
+    TargetScore,
+    plan_target,
+    score_requests,
+    source_problem,
+    source_problem_kind,
+    target_capacity_problem,
+)
 from triage.settings import DecoderSettings
 
 DEFAULT_MARGIN = 1e-4
@@ -108,7 +116,7 @@ class Tally:
         self.counts = dict.fromkeys(VERDICTS, 0)
         self.by_bucket: dict[str, dict[str, int]] = {}
         self.gaps = array("d")              # score gap of every compared row, in input order
-        self.skipped: dict[str, int] = {}   # reason -> rows, in order of first appearance
+        self.skipped: dict[str, int] = {}   # reason code -> rows, in order of first appearance
         self.at_limit = 0
         self.corpus = CorpusStats(options.metric)
         self.decoded = False
@@ -122,8 +130,8 @@ class Tally:
             self.counts[verdict] += 1
             self.by_bucket.setdefault(bucket, dict.fromkeys(VERDICTS, 0))[verdict] += 1
         self.gaps.extend(float(x) for x in v.loc[v["verdict"].isin(COMPARED), "score_gap"])
-        for reason in v.loc[v["verdict"] == "skipped", "reason"]:
-            self.skipped[reason] = self.skipped.get(reason, 0) + 1
+        for code in v.loc[v["verdict"] == "skipped", "reason_code"]:
+            self.skipped[code] = self.skipped.get(code, 0) + 1
         self.at_limit += int(v["out_hit_limit"].sum())
         self.corpus.add(part.outputs, part.references)
         self.decoded = self.decoded or part.decoded
@@ -240,19 +248,28 @@ def _triage_step(model, frame: pd.DataFrame, settings: DecoderSettings, options:
     fail_idx = [i for i in range(n) if failed[i]]
     requests = []
     limit = settings.limit_new_tokens()
-    unscorable: dict[int, tuple[str | None, list[str | None]]] = {}  # row -> (source problem, target problems)
+    unscorable: dict[int, tuple[Problem | None, list[Problem | None]]] = {}  # row -> (source, target problems)
+    breaches: dict[int, tuple[str, str]] = {}  # row -> (the rule its output breaks, the facts for the reason)
     for i in fail_idx:
         refs = model.tokenize_targets(references[i])
         out = model.tokenize_targets([outputs[i]])[0]
         targets = refs + [out]
         # a target of exactly `limit` tokens can only come out of the decoder as a hypothesis stopped at
         # the length limit (no end token): score it that way, flagged
-        requests.append(ScoreRequest(src_ids[i], targets, [len(t) >= limit for t in targets]))
+        no_end = [len(t) >= limit for t in targets]
+        requests.append(ScoreRequest(src_ids[i], targets, no_end))
         src_problem = _source_problem(model, src_ids[i])
-        problems = [src_problem or _target_problem(model, text, ids)
-                    for text, ids in zip(references[i] + [outputs[i]], targets, strict=True)]
+        problems = [src_problem or _target_problem(model, text, ids, no_end_k, limit)
+                    for text, ids, no_end_k in zip(references[i] + [outputs[i]], targets, no_end, strict=True)]
         if any(problems):
             unscorable[i] = (src_problem, problems)
+        # the decoder's rules come before the model's capacity and the tokenizer: an output longer than
+        # the length limit is counted under the rule whatever else is wrong with it
+        labels, _, rule = plan_target(out, model.end_id, limit, no_end[-1])
+        if rule is not None:
+            facts = f"{len(labels)} tokens with the end token, the limit is {limit}"
+            also = src_problem[1] if src_problem else f"output: {problems[-1][1]}" if problems[-1] else None
+            breaches[i] = (rule, facts + (f"; also {also}" if also else ""))
 
     def committed() -> None:
         counts["rows"] += n
@@ -274,17 +291,20 @@ def _triage_step(model, frame: pd.DataFrame, settings: DecoderSettings, options:
         best = 0
         if not failed[i]:
             row.update(verdict="correct", reason="output matches a reference" if matches_any(outputs[i], ref_texts)
-                       else f"{options.metric} {metric_values[i]:.1f} >= {options.below:g}")
+                       else f"{options.metric} {metric_values[i]:.1f} >= {options.below:g}", reason_code="")
             ref_s = out_s = None
         else:
             targets = by_row[i]
             ref_s, out_s = targets[:-1], targets[-1]
+            if i in breaches:
+                out_s = _breach(out_s, *breaches[i])
             v = decide(ref_s, out_s, options.margin)
-            if v.verdict == "skipped" and i in unscorable and unscorable[i][0]:
-                v.reason = f"source: {unscorable[i][0]}"
+            src_problem = unscorable[i][0] if i in unscorable else None
+            if v.verdict == "skipped" and src_problem and not v.code.startswith("rule:"):
+                v.code, v.reason = src_problem
             if out_s.scored and out_s.blocked_rule is not None:  # the decoder could not have written it
                 foreign.setdefault(out_s.blocked_rule, []).append(row["line"])
-            row.update(verdict=v.verdict.value, reason=v.reason)
+            row.update(verdict=v.verdict.value, reason=v.reason, reason_code=v.code)
             best = v.best_ref if v.best_ref is not None else 0
             kept[offset + i] = (ref_s, out_s)
         r = ref_s[best] if ref_s else None
@@ -324,16 +344,29 @@ def _special_ids(model) -> set[int]:
     return {x for x in (model.start_id, model.end_id, model.pad_id) if x is not None}
 
 
-def _source_problem(model, ids: list[int]) -> str | None:
+Problem = tuple[str, str]  # (reason code, the row's reason text)
+
+
+def _breach(out: TargetScore, rule: str, detail: str) -> TargetScore:
+    """The output's score marked as one the decoder's rule forbids, with the facts of the row."""
+    if out.scored:
+        return replace(out, blocked_rule=out.blocked_rule or rule, detail=detail)
+    return TargetScore(list(out.ids), [], math.nan, out.length, float("-inf"), False, rule, detail=detail)
+
+
+def _source_problem(model, ids: list[int]) -> Problem | None:
     """Why a source cannot be scored: it holds no token but special ones, or scoring's own source
     check (empty, too long) fails."""
     if ids and not set(ids) - _special_ids(model):
-        return "no tokens after tokenization apart from special ones " + _pieces(model, ids)
-    return source_problem(model, ids)
+        return "source:special-only", "source: no tokens after tokenization apart from special ones " + _pieces(
+            model, ids)
+    problem = source_problem(model, ids)
+    return (f"source:{source_problem_kind(model, ids)}", f"source: {problem}") if problem else None
 
 
-def _target_problem(model, text: str, ids: list[int]) -> str | None:
-    """Why a reference or output cannot be scored fairly: the tokenizer lost part of its text.
+def _target_problem(model, text: str, ids: list[int], no_end: bool, limit: int) -> Problem | None:
+    """Why a reference or output cannot be scored fairly: the tokenizer lost part of its text, or
+    it is longer than the model's positions.
 
     An unknown token stands for text the model cannot write, so its score says nothing about
     the text; a special token inside (an end token written as text) ends or breaks the
@@ -342,13 +375,16 @@ def _target_problem(model, text: str, ids: list[int]) -> str | None:
     """
     unk = model.unk_id
     if unk is not None and unk in ids:
-        return "unknown to the tokenizer: " + _unknown_parts(model, text, unk)
+        return "unknown-tokens", "unknown to the tokenizer: " + _unknown_parts(model, text, unk)
     special = [t for t in ids if t in _special_ids(model)]
     if special and len(special) == len(ids):
-        return "no tokens after tokenization apart from special ones " + _pieces(model, special)
+        return "special-only", "no tokens after tokenization apart from special ones " + _pieces(model, special)
     if special:
-        return "holds special tokens the decoder never writes inside a sequence " + _pieces(model, special)
-    return None
+        return "special-tokens", "holds special tokens the decoder never writes inside a sequence " + _pieces(
+            model, special)
+    labels, _, _ = plan_target(ids, model.end_id, limit, no_end)
+    problem = target_capacity_problem(model, labels)
+    return ("too-long-for-model", problem) if problem else None
 
 
 def _pieces(model, ids: list[int]) -> str:
@@ -396,7 +432,7 @@ def _score_rows(model, settings, options, cache, requests, problems, committed):
             continue
         part = iter(next(it)) if any(p is None for p in prob[1]) else iter(())
         results.append([next(part) if p is None else
-                        TargetScore(list(t), [], math.nan, len(t) + 1, math.nan, skipped=p)
+                        TargetScore(list(t), [], math.nan, len(t) + 1, math.nan, skipped=p[1], skip_code=p[0])
                         for t, p in zip(req.targets, prob[1], strict=True)])
     return results
 

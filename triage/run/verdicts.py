@@ -22,6 +22,8 @@ from dataclasses import dataclass
 from enum import StrEnum
 from typing import TYPE_CHECKING
 
+from triage.run.reasons import rule_code
+
 if TYPE_CHECKING:  # the report imports this module and renders without torch
     from triage.scoring.scorer import TargetScore
 
@@ -56,24 +58,38 @@ class RowVerdict:
     verdict: Verdict
     reason: str
     best_ref: int | None = None   # index of the best-scoring reference
+    code: str = ""                # the reason's kind for skipped and blocked rows (triage.run.reasons)
+
+
+def _skip_code(side: str, kind: str | None) -> str:
+    if kind and ":" in kind:  # already names its side (a source problem found while scoring)
+        return kind
+    return f"{side}:{kind or 'unscorable'}"
 
 
 def decide(ref_scores: list[TargetScore], out_score: TargetScore, margin: float) -> RowVerdict:
-    """The verdict of a failed row from its scored references and output."""
-    if not out_score.scored:
-        return RowVerdict(Verdict.SKIPPED, f"output: {out_score.skipped}")
-    scored = [(k, s) for k, s in enumerate(ref_scores) if s.scored]
-    if not scored:
-        return RowVerdict(Verdict.SKIPPED, f"reference: {ref_scores[0].skipped}")
+    """The verdict of a failed row from its scored references and output.
+
+    The decoder's rules come first: an output a rule forbids is skipped under that rule whatever
+    else is wrong with the row (its other problems are in the reason, from `out_score.detail`)."""
     if out_score.blocked_rule is not None:
+        detail = f": {out_score.detail}" if out_score.detail else ""
         return RowVerdict(
             Verdict.SKIPPED,
-            f"the output breaks the decoder's rule ({out_score.blocked_rule}): it was not produced at these settings",
+            f"the output breaks the decoder's rule ({out_score.blocked_rule}{detail}): it was not produced at "
+            "these settings", code=rule_code(out_score.blocked_rule),
         )
+    if not out_score.scored:
+        return RowVerdict(Verdict.SKIPPED, f"output: {out_score.skipped}", code=_skip_code("output", out_score.skip_code))
+    scored = [(k, s) for k, s in enumerate(ref_scores) if s.scored]
+    if not scored:
+        return RowVerdict(Verdict.SKIPPED, f"reference: {ref_scores[0].skipped}",
+                          code=_skip_code("reference", ref_scores[0].skip_code))
     best_k, best = max(scored, key=lambda ks: (ks[1].score, -ks[0]))
     if math.isinf(best.score) and best.score < 0:
         rules = sorted({s.blocked_rule or "decoding rule" for _, s in scored})
-        return RowVerdict(Verdict.BLOCKED, "the decoder's rules forbid the reference: " + ", ".join(rules), best_k)
+        return RowVerdict(Verdict.BLOCKED, "the decoder's rules forbid the reference: " + ", ".join(rules), best_k,
+                          code="blocked:" + rule_code(rules[0]).partition(":")[2])
     diff = best.score - out_score.score
     if diff > margin:
         return RowVerdict(Verdict.SEARCH, f"reference outscores output by {diff:.4f}", best_k)

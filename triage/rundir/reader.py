@@ -19,7 +19,7 @@ from triage.run.summary import Summary
 from triage.rundir.writer import atomic_write
 from triage.studies import SECTIONS
 
-TEXT_COLUMNS = ("id", "verdict", "reason", "bucket", "source", "reference", "output")
+TEXT_COLUMNS = ("id", "verdict", "reason", "reason_code", "bucket", "source", "reference", "output")
 
 
 def read_summary(run_dir: str | Path) -> Summary:

@@ -34,7 +34,8 @@ def _uf(x) -> float:
 def encode_scores(scores: list[TargetScore]) -> str:
     return json.dumps([
         {"ids": s.ids, "lp": [_f(x) for x in s.logprobs], "sum": _f(s.logprob_sum), "len": s.length,
-         "score": _f(s.score), "hit": s.hit_limit, "blocked": s.blocked_rule, "skipped": s.skipped}
+         "score": _f(s.score), "hit": s.hit_limit, "blocked": s.blocked_rule, "skipped": s.skipped,
+         "code": s.skip_code}
         for s in scores
     ])
 
@@ -42,7 +43,7 @@ def encode_scores(scores: list[TargetScore]) -> str:
 def decode_scores(text: str) -> list[TargetScore]:
     return [
         TargetScore(d["ids"], [_uf(x) for x in d["lp"]], _uf(d["sum"]), d["len"], _uf(d["score"]), d["hit"],
-                    d["blocked"], d["skipped"])
+                    d["blocked"], d["skipped"], d.get("code"))
         for d in json.loads(text)
     ]
 

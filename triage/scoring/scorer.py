@@ -40,7 +40,7 @@ RULES_LOGITS_BUDGET = 1 << 26
 #: are planned (end token, length limit), how log-probs are computed or summed, the objective,
 #: how rules block a target, what is skipped and why. Pure speed-ups that keep every number
 #: (tests/test_scoring_speedups.py) need no bump.
-SCORING_VERSION = 1
+SCORING_VERSION = 2
 
 
 @dataclass
@@ -55,6 +55,8 @@ class TargetScore:
     hit_limit: bool = False             # stopped at the decoder's length limit: scored without end token
     blocked_rule: str | None = None     # a decoding rule forbids this target
     skipped: str | None = None          # why it could not be scored
+    skip_code: str | None = None        # the kind of that reason ("too-long-for-model", "source:too-long", ...)
+    detail: str | None = None           # a blocked target's other facts (its length, what else is wrong with it)
 
     @property
     def scored(self) -> bool:
@@ -96,9 +98,11 @@ def score_requests(
         for j, ids in enumerate(req.targets):
             no_end = req.allow_no_end[j] if j < len(req.allow_no_end) else False
             labels, hit, blocked = plan_target(ids, model.end_id, limit, no_end)
-            reason = _unscorable(model, req.source_ids, labels)
-            if reason:
-                results[i][j] = TargetScore(labels, [], float("nan"), len(labels), float("nan"), hit, None, reason)
+            unscorable = _unscorable(model, req.source_ids, labels)
+            if unscorable:
+                kind, reason = unscorable
+                results[i][j] = TargetScore(labels, [], float("nan"), len(labels), float("nan"), hit, None, reason,
+                                            kind)
                 continue
             jobs.append((i, j, labels, hit, blocked))
 
@@ -150,12 +154,29 @@ def source_problem(model: SequenceModel, source_ids: Sequence[int]) -> str | Non
     return None
 
 
-def _unscorable(model: SequenceModel, source_ids: list[int], labels: list[int]) -> str | None:
-    problem = source_problem(model, source_ids)
-    if problem:
-        return f"source: {problem}"
+def source_problem_kind(model: SequenceModel, source_ids: Sequence[int]) -> str | None:
+    """The kind of source_problem's answer: "empty" or "too-long" (None: no problem)."""
+    if not source_ids:
+        return "empty"
+    most = model.max_source_tokens
+    return "too-long" if most is not None and len(source_ids) > most else None
+
+
+def target_capacity_problem(model: SequenceModel, labels: Sequence[int]) -> str | None:
+    """Why the model cannot take a scored target (its labels, end token included): too many positions."""
     if model.max_target_tokens is not None and len(labels) > model.max_target_tokens:
         return f"target has {len(labels)} tokens, the model takes at most {model.max_target_tokens}"
+    return None
+
+
+def _unscorable(model: SequenceModel, source_ids: list[int], labels: list[int]) -> tuple[str, str] | None:
+    """(kind, reason) when the target cannot be scored at all; None when it can."""
+    problem = source_problem(model, source_ids)
+    if problem:
+        return f"source:{source_problem_kind(model, source_ids)}", f"source: {problem}"
+    problem = target_capacity_problem(model, labels)
+    if problem:
+        return "too-long-for-model", problem
     return None
 
 
