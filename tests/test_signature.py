@@ -70,10 +70,10 @@ def test_a_run_writes_its_signature_with_sacrebleus_and_the_objective():
                           "output": [None] * 6, "line": range(2, 8)})
     result = run_triage(TransformersModel(model, tok), frame, options=TriageOptions(progress=False, margin=0.25))
     s = result.summary
-    parts = dict(p.split("=", 1) for p in s["signature"].split(SEPARATOR))
-    assert parts["objective"] == s["objective"]
+    parts = dict(p.split("=", 1) for p in s.signature.split(SEPARATOR))
+    assert parts["objective"] == s.objective
     assert parts["margin"] == "0.25"
     assert parts["buckets"] == "ref-words:1,11,21,31,41"
     # sacrebleu's signature of the same corpus score, as sacrebleu writes it
-    assert parts["metric"] == "chrf:" + s["corpus_metric"]["signature"]
-    assert s["corpus_metric"]["signature"] == CHRF_SIG  # one reference per row: nrefs:1, sacrebleu's default
+    assert parts["metric"] == "chrf:" + s.corpus_metric.signature
+    assert s.corpus_metric.signature == CHRF_SIG  # one reference per row: nrefs:1, sacrebleu's default
