@@ -172,7 +172,7 @@ class Summary:
     buckets: list[Bucket]
     score_gap: ScoreGap
     corpus_metric: CorpusMetric
-    skipped_reasons: dict[str, int]
+    skipped_reasons: dict[str, int]  # reason code (triage.run.reasons) -> rows, most frequent first
     outputs_at_length_limit: int
     outputs_not_from_these_settings: ForeignOutputs
     signature: str | None = None   # the whole run's signature, when the run has one
