@@ -109,6 +109,9 @@ def build_parser() -> argparse.ArgumentParser:
                    "smallest width that keeps it")
     g.add_argument("--exact", action="store_true",
                    help="exact search (bounded depth-first) on short failed rows, with a budget per row")
+    g.add_argument("--check-rows", type=int, default=16, metavar="N",
+                   help="decode a seeded sample of N failed rows again at the stated settings to check that the "
+                   "given outputs come from them (default 16; 0 turns it off)")
 
     g = r.add_argument_group("run")
     g.add_argument("--out", metavar="DIR", help="output folder (default reports/<dev-set name>)")
@@ -166,7 +169,8 @@ def _check_out_dir(out_dir: Path) -> None:
     check_out_dir(out_dir)
 
 
-FLAGS = {"chunk_rows": "--chunk-rows", "page_rows": "--page-rows", "max_rows": "--max-rows", "beam": "--beam"}
+FLAGS = {"chunk_rows": "--chunk-rows", "page_rows": "--page-rows", "max_rows": "--max-rows", "beam": "--beam",
+         "check_rows": "--check-rows"}
 
 
 def cmd_run(a: argparse.Namespace) -> int:
@@ -197,7 +201,8 @@ def cmd_run(a: argparse.Namespace) -> int:
     if not a.no_cache:
         options.cache_dir = Path(a.cache_dir) if a.cache_dir else out_dir / ".cache"
     plan = StudyPlan(widen=a.widen, beam_curve=a.beam_curve, alpha_grid=a.alpha_grid, redecode_alpha=a.redecode_alpha,
-                     max_rows=a.max_rows, seed=a.seed, where_lost=a.where_lost, exact=a.exact)
+                     max_rows=a.max_rows, seed=a.seed, where_lost=a.where_lost, exact=a.exact,
+                     check_rows=a.check_rows)
     overrides = dict(beam=a.beam, alpha=a.alpha, penalty=a.penalty, max_new_tokens=a.max_new_tokens,
                      early_stopping=a.early_stopping, source_prefix=a.prefix)
     if a.threads:
@@ -216,6 +221,9 @@ def cmd_run(a: argparse.Namespace) -> int:
     problem = outcome.settings_problem()
     if problem is not None:
         raise problem
+    warning = outcome.reproduction_warning()
+    if warning:
+        print(f"triage: warning: {warning}", file=sys.stderr)
     foreign = outcome.summary.outputs_not_from_these_settings
     if foreign.rows:
         k = foreign.rows

@@ -23,7 +23,7 @@ from pathlib import Path
 from typing import Any
 
 from triage.decision import recommend, settings_mismatch
-from triage.errors import InputError, OptionError, check_at_least_one
+from triage.errors import InputError, OptionError, OptionValueError, check_at_least_one
 from triage.models.describe import model_info, model_settings
 from triage.run.pipeline import TriageOptions, TriageResult, run_triage
 from triage.run.summary import Summary
@@ -41,7 +41,9 @@ class StudyPlan:
     "start:stop:step"; None: the default grid); redecode_alpha: also decode again at these alphas;
     max_rows: a seeded sample of at most this many rows per decoding study; seed: the sample's
     seed; where_lost: where the beam lost the reference of each search-side row; exact: exact
-    search on short failed rows.
+    search on short failed rows; check_rows: decode a seeded sample of this many failed rows again
+    at the run's settings to see whether the given outputs come from them (0: off; the check is
+    skipped when triage decoded the outputs itself).
     """
 
     widen: Sequence[int] | str | None = None
@@ -52,6 +54,7 @@ class StudyPlan:
     seed: int = 0
     where_lost: bool = False
     exact: bool = False
+    check_rows: int = 16  # triage.studies.reproduce.DEFAULT_CHECK_ROWS
 
     @property
     def decodes(self) -> bool:
@@ -89,6 +92,21 @@ class RunOutcome:
                           hint="pass the settings the outputs were decoded with (--beam, --alpha, --penalty, "
                           "--max-new-tokens, ...) or leave them to generation_config.json; the files were "
                           "written with those rows skipped")
+
+
+    def reproduction_warning(self) -> str | None:
+        """A line for the person running it when fewer than 90% of the sampled failed outputs come
+        out of the decoder again at the run's settings (None otherwise, or when nothing was checked)."""
+        from triage.studies.reproduce import WARN_BELOW
+
+        rep = getattr(self.summary, "reproduction", None)
+        share = rep.reproduced_share if rep is not None else None
+        if share is None or share >= WARN_BELOW:
+            return None
+        return (f"only {share:.0%} of the sampled failed outputs ({rep.reproduced} of {rep.checked}) come out of the "
+                f"decoder again at {rep.objective}: the outputs were probably decoded with other settings (give "
+                "--beam, --penalty and --alpha as you decoded; the rows that differ are in summary.json's "
+                "reproduction)")
 
 
 def _no_note(text: str) -> None:
@@ -161,6 +179,8 @@ def triage_run(
     check_at_least_one("chunk_rows", options.chunk_rows)
     check_at_least_one("page_rows", page_rows)
     check_at_least_one("max_rows", plan.max_rows)
+    if plan.check_rows is None or plan.check_rows < 0:
+        raise OptionValueError("check_rows", f"must be 0 (off) or more, got {plan.check_rows}")
     if isinstance(settings, Mapping):
         check_at_least_one("beam", settings.get("beam"))
     dev = _open_data(data, whole=plan.needs_rows)
@@ -182,13 +202,17 @@ def triage_run(
     plan = replace(plan, widen=widths, alpha_grid=alphas, redecode_alpha=redecode)
 
     writer = RunWriter(out_dir, page_rows) if out_dir is not None else None
+    from triage.studies.reproduce import FailedRowSample
+
+    sample = FailedRowSample(plan.check_rows, plan.seed)
     try:
         if plan.needs_rows:
-            result, tables = _in_memory(model, dev, settings, options, plan, info, on_note)
+            result, tables = _in_memory(model, dev, settings, options, plan, info, on_note, sample)
             if writer is not None:
                 writer.add(result.verdicts, result.tokens)
         else:
-            result, tables = _streamed(model, dev, settings, options, plan, info, writer)
+            result, tables = _streamed(model, dev, settings, options, plan, info, writer, sample)
+        _check_outputs(model, result, sample, options)
         result.summary.recommendation = recommend(result.summary)  # once, from the whole summary
         run_info: dict[str, Any] = {}
         if writer is not None:
@@ -206,12 +230,22 @@ def triage_run(
     return RunOutcome(result, tables, out_dir, run_info)
 
 
-def _in_memory(model, dev, settings, options, plan: StudyPlan, info, on_note) -> tuple[TriageResult, dict]:
+def _check_outputs(model, result: TriageResult, sample, options: TriageOptions) -> None:
+    """Decode the sampled failed rows again at the run's settings: do the given outputs come from them?
+    (Nothing to check when the rows were not sampled or triage decoded the outputs itself.)"""
+    if sample.n <= 0 or result.summary.data.outputs != "given":
+        return
+    from triage.studies.reproduce import check_outputs
+
+    result.summary.reproduction = check_outputs(model, result.settings, sample, options.progress)
+
+
+def _in_memory(model, dev, settings, options, plan: StudyPlan, info, on_note, sample) -> tuple[TriageResult, dict]:
     """The rows held in memory: triage, then the sweeps and the search checks on them."""
     from triage.studies.plan import estimate_seconds
     from triage.studies.runner import run_search_checks, run_studies
 
-    result = run_triage(model, dev, settings, options, model_info=info)
+    result = run_triage(model, dev, settings, options, model_info=info, on_step=sample.add_step)
     sweep_plan = dict(widen=plan.widen, beam_curve_max=plan.beam_curve, alphas=plan.alpha_grid,
                       redecode_alpha=plan.redecode_alpha, max_rows=plan.max_rows, seed=plan.seed)
     if plan.decodes:
@@ -224,14 +258,15 @@ def _in_memory(model, dev, settings, options, plan: StudyPlan, info, on_note) ->
     return result, done.tables
 
 
-def _streamed(model, dev, settings, options, plan: StudyPlan, info, writer) -> tuple[TriageResult, dict]:
+def _streamed(model, dev, settings, options, plan: StudyPlan, info, writer, sample) -> tuple[TriageResult, dict]:
     """The dev set streamed through: each step's rows go to the writer (and are kept only when
     nothing is written); the length-penalty re-ranking is tallied step by step."""
     from triage.studies.length_penalty import PenaltyTally
     from triage.studies.runner import run_studies
 
     penalty = PenaltyTally(settings, options.margin, options.metric, plan.alpha_grid)
-    steps = [penalty.add_step] if writer is None else [writer.add_step, penalty.add_step]
+    steps = [penalty.add_step, sample.add_step] if writer is None else [writer.add_step, penalty.add_step,
+                                                                          sample.add_step]
     result = run_triage(model, dev, settings, options, model_info=info, keep=writer is None, on_step=steps)
     done = run_studies(model, result, alphas=plan.alpha_grid, progress=options.progress, length_penalty=True,
                        penalty_tally=penalty)

@@ -30,7 +30,7 @@ if TYPE_CHECKING:  # the report reads the sections and their views without torch
     from triage.scoring.scorer import TargetScore
 
 __all__ = ["COMPARED", "FAILED", "Section", "best_reference_score", "compared_rows", "key", "mean", "omit_none",
-           "prepare", "references", "rescore", "sample", "share", "sources", "timed_decode"]
+           "prepare", "references", "reproduce", "rescore", "sample", "share", "sources", "timed_decode"]
 
 
 # --------------------------------------------------------------------------- typed sections
@@ -162,6 +162,15 @@ def timed_decode(model, settings, src, desc, progress):
         t0 = time.perf_counter()
         out = decode(model, settings, src, progress=b.update)
         return out, time.perf_counter() - t0
+
+
+def reproduce(model, settings, src, given: Sequence[str], desc: str, progress) -> tuple[list, float, list[bool]]:
+    """Decode `src` at `settings` (timed) and say which of the `given` outputs each decode
+    reproduces (equal after whitespace normalization): (decoded, seconds, same)."""
+    from triage.run.verdicts import matches_any
+
+    decoded, seconds = timed_decode(model, settings, src, desc, progress)
+    return decoded, seconds, [matches_any(d.text, [g]) for d, g in zip(decoded, given, strict=True)]
 
 
 # --------------------------------------------------------------------------- scores and sums

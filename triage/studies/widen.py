@@ -26,6 +26,7 @@ from triage.studies.common import (
     compared_rows,
     mean,
     prepare,
+    reproduce,
     rescore,
     sample,
     share,
@@ -137,10 +138,10 @@ def sweep_widen(model, result, widths: Sequence[int], *, references, ref_kind, m
         return section, pd.DataFrame(table_rows)
     src, refs_rows = prepare(model, result, rows, references, settings)
     before = sentence_scores(metric, [outputs[i] for i in rows], refs_rows)
-    cur, t_cur = timed_decode(model, settings, src, f"beam {settings.beam} (timing)", progress)
-    section.current = CurrentWidth(
-        beam=settings.beam, seconds_per_row=t_cur / len(rows),
-        reproduced_share=sum(matches_any(d.text, [outputs[i]]) for d, i in zip(cur, rows, strict=True)) / len(rows))
+    _, t_cur, same = reproduce(model, settings, src, [outputs[i] for i in rows], f"beam {settings.beam} (timing)",
+                               progress)
+    section.current = CurrentWidth(beam=settings.beam, seconds_per_row=t_cur / len(rows),
+                                   reproduced_share=sum(same) / len(rows))
     for w in widths:
         sw = settings.replace(beam=int(w))
         dec, t_w = timed_decode(model, sw, src, f"beam {w}", progress)

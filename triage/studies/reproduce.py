@@ -1,0 +1,134 @@
+"""Do the given outputs come from the stated settings? A seeded sample of failed rows is decoded
+again at the run's settings and each new output compared with the given one (after whitespace
+normalization, as a correct row is found).
+
+The sample is drawn while the dev set streams through (FailedRowSample.add_step takes each
+step's ChunkResult): every failed row whose source the model can read gets a key from a hash of
+the seed and its dev-set index, and the rows of the `n` smallest keys are kept. So the sample is
+the same whatever the step size, streamed or in memory, and memory holds at most `n` rows.
+The decode goes through the same path as the widen study's reproduction of the current width
+(common.reproduce).
+
+Writes the summary's "reproduction" section (ReproductionSection); triage.decision reads its
+`reproduced_share` (below 50%: inconclusive) and the run warns below 90%.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import heapq
+from dataclasses import dataclass, field
+from typing import Any
+
+from triage.display import View, fmt_num, fmt_pct, fmt_value, table, tables
+from triage.run.verdicts import FAILED
+from triage.studies.common import Section, reproduce
+
+NAME = "reproduction"
+TITLE = "Do the outputs come from these settings?"
+DEFAULT_CHECK_ROWS = 16
+WARN_BELOW = 0.9  # a reproduced share below this gives a warning line (triage_run's reproduction_warning)
+MOST_LISTED = 20  # differing rows listed in the summary (all of them with the default sample)
+
+
+@dataclass
+class SampledRow:
+    index: int      # dev-set row index
+    line: int
+    id: str
+    source: str     # as in the dev set (the settings' source prefix is added when decoding)
+    output: str     # the given output
+
+
+class FailedRowSample:
+    """A seeded sample of at most `n` failed rows, kept while the rows stream through."""
+
+    def __init__(self, n: int, seed: int = 0):
+        self.n, self.seed = n, seed
+        self.failed = 0                                   # failed rows seen whose source can be read
+        self._heap: list[tuple[int, int, SampledRow]] = []  # (-key, index, row): the n smallest keys
+
+    def _key(self, index: int) -> int:
+        digest = hashlib.blake2b(f"{self.seed}:{index}".encode(), digest_size=8).digest()
+        return int.from_bytes(digest, "big")
+
+    def add_step(self, part: Any) -> None:
+        """Take the failed rows of one step (a triage.run.pipeline.ChunkResult)."""
+        if self.n <= 0:
+            return
+        v = part.verdicts
+        if not len(v):
+            return
+        keep = v["verdict"].isin([str(x) for x in FAILED]) & ~v["reason_code"].astype(str).str.startswith("source:")
+        for k in keep[keep].index:
+            self.failed += 1
+            index = part.offset + int(k)
+            entry = (-self._key(index), index)
+            if len(self._heap) >= self.n and entry <= self._heap[0][:2]:
+                continue
+            row = SampledRow(index, int(v["line"].iat[k]), str(v["id"].iat[k]), str(v["source"].iat[k]),
+                             str(part.outputs[k]))
+            if len(self._heap) < self.n:
+                heapq.heappush(self._heap, (*entry, row))
+            else:
+                heapq.heapreplace(self._heap, (*entry, row))
+
+    def rows(self) -> list[SampledRow]:
+        """The sampled rows, in input order."""
+        return sorted((r for *_, r in self._heap), key=lambda r: r.index)
+
+
+@dataclass
+class DifferingRow(Section):
+    line: int
+    id: str
+    given: str
+    decoded: str
+
+
+@dataclass
+class ReproductionSection(Section):
+    objective: str
+    seed: int
+    failed: int                 # failed rows the sample was drawn from (their sources readable)
+    checked: int
+    reproduced: int
+    reproduced_share: float | None
+    seconds: float
+    differing: list[DifferingRow] = field(default_factory=list)  # the first MOST_LISTED, in input order
+    differing_rows: int = 0
+
+
+def check_outputs(model, settings, sample: FailedRowSample, progress: bool = False) -> ReproductionSection:
+    """Decode the sampled rows at `settings` and count the given outputs reproduced."""
+    rows = sample.rows()
+    section = ReproductionSection(objective=settings.signature(), seed=sample.seed, failed=sample.failed,
+                                  checked=len(rows), reproduced=0, reproduced_share=None, seconds=0.0)
+    if not rows:
+        return section
+    src = model.tokenize_sources([settings.source_prefix + r.source for r in rows])
+    decoded, seconds, same = reproduce(model, settings, src, [r.output for r in rows],
+                                       f"beam {settings.beam} (outputs check)", progress)
+    differ = [DifferingRow(r.line, r.id, r.output, d.text)
+              for r, d, ok in zip(rows, decoded, same, strict=True) if not ok]
+    section.reproduced = sum(same)
+    section.reproduced_share = section.reproduced / len(rows)
+    section.seconds = seconds
+    section.differing, section.differing_rows = differ[:MOST_LISTED], len(differ)
+    return section
+
+
+# --------------------------------------------------------------------------- how the report shows it
+def view(r: ReproductionSection) -> View:
+    lines = [
+        f"{fmt_value(r.checked)} failed rows (a seeded sample, seed {fmt_value(r.seed)}, of "
+        f"{fmt_value(r.failed)}) decoded again at {fmt_value(r.objective)} in {fmt_num(r.seconds, 2)} s: "
+        f"{fmt_value(r.reproduced)} give the same output ({fmt_pct(r.reproduced_share)}).",
+    ]
+    if r.differing_rows:
+        lines.append("Below 90% the outputs were probably decoded with other settings; below 50% nothing is "
+                     "recommended. Give the beam width, penalty and alpha you decoded with.")
+    spec = [("line", "line", "int"), ("id", "id", "text"), ("given", "given output", "text"),
+            ("decoded", "decoded at these settings", "text")]
+    shown = tables(table("Rows whose output differs", spec, r.differing)) if r.differing else []
+    return View(lines=lines, tables=shown)
