@@ -146,7 +146,7 @@ class ForeignOutputs:
                 "first_line": self.first_line}
 
 
-STUDY_KEYS = ("length_penalty", "widen", "beam_curve", "where_lost", "exact")  # in summary.json's order
+STUDY_KEYS = ("length_penalty", "widen", "beam_curve", "where_lost", "exact", "reproduction")  # in order
 
 
 class StudySection(Protocol):
@@ -183,6 +183,7 @@ class Summary:
     beam_curve: StudySection | None = None      # BeamCurveSection
     where_lost: StudySection | None = None      # WhereLostSection
     exact: StudySection | None = None           # ExactSection
+    reproduction: StudySection | None = None    # ReproductionSection (the outputs check, --check-rows)
     extra: dict[str, Any] = field(default_factory=dict)  # keys of a newer or other writer, kept as read
 
     def studies(self) -> dict[str, StudySection]:
