@@ -54,7 +54,7 @@ class StudyPlan:
     seed: int = 0
     where_lost: bool = False
     exact: bool = False
-    check_rows: int = 16  # triage.studies.reproduce.DEFAULT_CHECK_ROWS
+    check_rows: int = 0  # off by default: 16 rows add about 16% to a demo run (benchmarks/bench_check_rows.py)
 
     @property
     def decodes(self) -> bool:
