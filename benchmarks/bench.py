@@ -1,7 +1,7 @@
 """Side-by-side speed check of triage's scoring on this machine (``python -m benchmarks.bench``).
 
 Builds, in memory and without download, an encoder-decoder of production translation size
-(Marian layout: 6 + 6 layers, d_model 512, 8 heads, FFN 2048, vocabulary 58,101; random
+(Marian layout: 6 + 6 layers, d_model 512, 8 heads, FFN 2048, vocabulary 60,000; random
 weights, seeded) and a seeded synthetic dev set (source, reference and output ids; each
 output shares with its reference a prefix of random length). In one process, interleaved
 chunk by chunk so a busy machine slows every contender alike, it times:
@@ -34,7 +34,7 @@ from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
 
-PROD = dict(d_model=512, layers=6, heads=8, ffn=2048, vocab=58101)
+PROD = dict(d_model=512, layers=6, heads=8, ffn=2048, vocab=60000)
 SMALL = dict(d_model=128, layers=3, heads=4, ffn=256, vocab=300)
 SAMPLE_MODEL = Path(__file__).resolve().parent.parent / "sample_data" / "model"
 
