@@ -264,7 +264,16 @@ def test_study_sections_read_back_as_written_and_match_the_shipped_schema(tiny, 
     done = run_studies(tm, part, alphas=[0.0, 0.5, 1.0], progress=False)
     part.summary.where_lost = where_lost(tm, part, max_width=8)  # small budgets keep the test short
     part.summary.exact = exact_check(tm, part, max_tokens=8, max_nodes=200, max_seconds=0.2)
-    sections = {"widen": done_plant.sections["widen"].to_json(), "beam_curve": done_plant.sections["beam_curve"].to_json(),
+    from types import SimpleNamespace
+
+    from triage.studies.reproduce import FailedRowSample, check_outputs
+
+    sample = FailedRowSample(4, seed=0)  # the outputs check on the planted run's failed rows
+    sample.add_step(SimpleNamespace(verdicts=result.verdicts, offset=0, outputs=result.verdicts["output"].tolist()))
+    reproduction = check_outputs(tm, result.settings, sample)
+    assert reproduction.checked == 4
+    sections = {"reproduction": reproduction.to_json(),
+                "widen": done_plant.sections["widen"].to_json(), "beam_curve": done_plant.sections["beam_curve"].to_json(),
                 "length_penalty": done.sections["length_penalty"].to_json(),
                 "where_lost": part.summary.where_lost.to_json(), "exact": part.summary.exact.to_json()}
     assert set(sections) == set(SECTIONS) == set(STUDIES)

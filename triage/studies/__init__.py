@@ -9,15 +9,17 @@ from __future__ import annotations
 
 from types import ModuleType
 
-from triage.studies import beam_curve, exact, length_penalty, where_lost, widen
+from triage.studies import beam_curve, exact, length_penalty, reproduce, where_lost, widen
 from triage.studies.beam_curve import BeamCurveSection
 from triage.studies.exact import ExactSection
 from triage.studies.length_penalty import LengthPenaltySection
+from triage.studies.reproduce import ReproductionSection
 from triage.studies.where_lost import WhereLostSection
 from triage.studies.widen import WidenSection
 
-STUDIES: dict[str, ModuleType] = {m.NAME: m for m in (widen, beam_curve, length_penalty, where_lost, exact)}
+STUDIES: dict[str, ModuleType] = {m.NAME: m for m in (reproduce, widen, beam_curve, length_penalty, where_lost, exact)}
 SECTIONS: dict[str, type] = {
+    "reproduction": ReproductionSection,
     "widen": WidenSection,
     "beam_curve": BeamCurveSection,
     "length_penalty": LengthPenaltySection,
@@ -25,5 +27,5 @@ SECTIONS: dict[str, type] = {
     "exact": ExactSection,
 }
 
-__all__ = ["SECTIONS", "STUDIES", "BeamCurveSection", "ExactSection", "LengthPenaltySection", "WhereLostSection",
-           "WidenSection"]
+__all__ = ["SECTIONS", "STUDIES", "BeamCurveSection", "ExactSection", "LengthPenaltySection", "ReproductionSection",
+           "WhereLostSection", "WidenSection"]

@@ -20,7 +20,7 @@ import heapq
 from dataclasses import dataclass, field
 from typing import Any
 
-from triage.display import View, fmt_num, fmt_pct, fmt_value, table, tables
+from triage.display import View, fmt_pct, fmt_value, table, tables
 from triage.run.verdicts import FAILED
 from triage.studies.common import Section, reproduce
 
@@ -93,27 +93,35 @@ class ReproductionSection(Section):
     failed: int                 # failed rows the sample was drawn from (their sources readable)
     checked: int
     reproduced: int
-    reproduced_share: float | None
-    seconds: float
+    reproduced_share: float | None  # reproduced / checked (None: no row checked)
     differing: list[DifferingRow] = field(default_factory=list)  # the first MOST_LISTED, in input order
     differing_rows: int = 0
+    too_long: int = 0           # sampled rows not decoded: the source is longer than the model's positions
+    # no wall-clock time here: summary.json is deterministic (timings belong in run.json)
 
 
 def check_outputs(model, settings, sample: FailedRowSample, progress: bool = False) -> ReproductionSection:
     """Decode the sampled rows at `settings` and count the given outputs reproduced."""
     rows = sample.rows()
     section = ReproductionSection(objective=settings.signature(), seed=sample.seed, failed=sample.failed,
-                                  checked=len(rows), reproduced=0, reproduced_share=None, seconds=0.0)
+                                  checked=0, reproduced=0, reproduced_share=None)
     if not rows:
         return section
     src = model.tokenize_sources([settings.source_prefix + r.source for r in rows])
-    decoded, seconds, same = reproduce(model, settings, src, [r.output for r in rows],
-                                       f"beam {settings.beam} (outputs check)", progress)
+    most = model.max_source_tokens
+    fits = [most is None or len(ids) <= most for ids in src]  # never decode past the model's positions
+    rows = [r for r, ok in zip(rows, fits, strict=True) if ok]
+    src = [ids for ids, ok in zip(src, fits, strict=True) if ok]
+    section.too_long = fits.count(False)
+    section.checked = len(rows)
+    if not rows:
+        return section
+    decoded, _seconds, same = reproduce(model, settings, src, [r.output for r in rows],
+                                        f"beam {settings.beam} (outputs check)", progress)
     differ = [DifferingRow(r.line, r.id, r.output, d.text)
               for r, d, ok in zip(rows, decoded, same, strict=True) if not ok]
     section.reproduced = sum(same)
     section.reproduced_share = section.reproduced / len(rows)
-    section.seconds = seconds
     section.differing, section.differing_rows = differ[:MOST_LISTED], len(differ)
     return section
 
@@ -122,9 +130,12 @@ def check_outputs(model, settings, sample: FailedRowSample, progress: bool = Fal
 def view(r: ReproductionSection) -> View:
     lines = [
         f"{fmt_value(r.checked)} failed rows (a seeded sample, seed {fmt_value(r.seed)}, of "
-        f"{fmt_value(r.failed)}) decoded again at {fmt_value(r.objective)} in {fmt_num(r.seconds, 2)} s: "
+        f"{fmt_value(r.failed)}) decoded again at {fmt_value(r.objective)}: "
         f"{fmt_value(r.reproduced)} give the same output ({fmt_pct(r.reproduced_share)}).",
     ]
+    if r.too_long:
+        lines.append(f"{fmt_value(r.too_long)} sampled rows were not decoded: their source is longer than the "
+                     "model's positions.")
     if r.differing_rows:
         lines.append("Below 90% the outputs were probably decoded with other settings; below 50% nothing is "
                      "recommended. Give the beam width, penalty and alpha you decoded with.")
