@@ -111,7 +111,7 @@ def test_the_rule_weighs_the_metric_and_names_missing_evidence():
     split = weigh(Evidence({"search": 9, "model": 9, "tie": 2}))
     assert split.action is Action.INCONCLUSIVE and len(split.missing) == 2
     few = weigh(Evidence({"search": 5, "model": 4, "tie": 0}))
-    assert few.because == "only 9 failed rows could be compared (need at least 10)"
+    assert few.because.startswith("only 9 of 9 failed rows (100%) were compared: the verdict mix is read when at least 10")
     model_side = weigh(Evidence({"search": 2, "model": 18, "tie": 0}))
     assert model_side.action is Action.FIX_MODEL and "90% of compared failures are model-side (18 of 20)" in \
         model_side.because

@@ -3,10 +3,13 @@
     from triage.decision import recommend
     summary.recommendation = recommend(summary)   # after every study of the run has finished
 
-The rule reads the verdict mix and, where they ran, the studies' evidence (wider beams, other
-length penalties). When the given outputs cannot come from the decoder at the run's settings
-(settings_mismatch) nothing is recommended, whatever the studies found: their numbers rest on
-scores of outputs the decoder did not maximize.
+The rule, in the order it is checked: when the given outputs cannot come from the decoder at the
+run's settings (settings_mismatch: half of the failed outputs break its rules), or the outputs
+check reproduces under half of its sample, nothing is recommended, whatever the studies found:
+their numbers rest on scores of outputs the decoder did not maximize. Then the coverage: the
+verdict mix is read only when at least MIN_ROWS failed rows and MIN_COVERAGE of them were
+compared. Then the verdict mix and, where they ran, the studies' evidence (wider beams, other
+length penalties).
 """
 
 from __future__ import annotations
@@ -18,9 +21,13 @@ from triage.run.analysis import search_share
 from triage.run.summary import Action, Recommendation, Summary
 from triage.run.verdicts import FAILED, Verdict
 from triage.studies.length_penalty import LengthPenaltySection
+from triage.studies.reproduce import ReproductionSection
 from triage.studies.widen import WidenSection
 
-MIN_ROWS = 10  # compared failed rows the verdict mix needs before it is read
+# The rule's thresholds, in the order they are checked (README: The recommendation rule).
+MIN_REPRODUCED = 0.5  # outputs check: below this share of sampled failed rows reproduced, nothing is recommended
+MIN_ROWS = 10         # compared failed rows the verdict mix needs before it is read ...
+MIN_COVERAGE = 0.5    # ... and the share of all failed rows they must be (skipped, blocked: not compared)
 
 
 def settings_mismatch(summary: Summary) -> str | None:
@@ -52,10 +59,12 @@ class Evidence:
     counts: dict[str, int]
     widen: WidenSection | None = None
     length_penalty: LengthPenaltySection | None = None
+    reproduction: ReproductionSection | None = None
 
     @classmethod
     def of(cls, summary: Summary) -> Evidence:
-        return cls(dict(summary.counts), summary.widen, summary.length_penalty)
+        rep = summary.reproduction if isinstance(summary.reproduction, ReproductionSection) else None
+        return cls(dict(summary.counts), summary.widen, summary.length_penalty, rep)
 
     def __post_init__(self) -> None:
         self.search, self.compared = search_share(self.counts)
@@ -66,6 +75,13 @@ class Evidence:
         self.m_share = self.model / n if n else 0.0
         self.best = self.widen.best_width() if self.widen is not None else None
         self.metric = metric_name(self.widen)
+
+    def coverage(self) -> str:
+        """How many failed rows were compared, and what kept the others out."""
+        out = [f"{self.counts.get(v, 0)} {v}" for v in (Verdict.SKIPPED, Verdict.BLOCKED) if self.counts.get(v)]
+        share = f" ({self.compared / self.failed:.0%})" if self.failed else ""
+        return f"{self.compared} of {self.failed} failed rows{share} were compared" + (
+            f" ({', '.join(out)})" if out else "")
 
     def widen_numbers(self) -> str:
         """What the best measured width does (when one was measured)."""
@@ -90,11 +106,27 @@ def recommend(summary: Summary, min_rows: int = MIN_ROWS) -> Recommendation:
 
 
 def weigh(ev: Evidence, min_rows: int = MIN_ROWS) -> Recommendation:
-    """The rule itself, on the verdict counts and study evidence alone."""
-    if ev.compared < min_rows:
+    """The rule itself, on the verdict counts and study evidence alone (after settings_mismatch)."""
+    rep = ev.reproduction
+    if rep is not None and rep.reproduced_share is not None and rep.reproduced_share < MIN_REPRODUCED:
         return Recommendation(Action.INCONCLUSIVE,
-                              f"only {ev.compared} failed rows could be compared (need at least {min_rows})",
-                              ["more failed rows"])
+                              "the outputs were not decoded with these settings: give the beam width, penalty and "
+                              f"alpha you decoded with (decoding {rep.checked} sampled failed rows again at "
+                              f"{rep.objective} gives {rep.reproduced} of their outputs, {rep.reproduced_share:.0%}; "
+                              f"at least {MIN_REPRODUCED:.0%} are needed)",
+                              ["the beam width, penalty and alpha the outputs were decoded with"])
+    few, thin = ev.compared < min_rows, ev.compared < MIN_COVERAGE * ev.failed
+    if few or thin:
+        fix = []
+        if thin:
+            fix.append("failed rows that can be scored: pass the settings the outputs were decoded with, or fix "
+                       "the tokenizer problems listed in skipped_reasons")
+        if few:
+            fix.append("more failed rows")
+        return Recommendation(Action.INCONCLUSIVE,
+                              f"only {ev.coverage()}: the verdict mix is read when at least {min_rows} failed rows "
+                              f"and at least {MIN_COVERAGE:.0%} of them are compared; "
+                              + "; or ".join(fix), fix)
     decided, lp_text = _length_penalty_case(ev)
     if decided is not None:
         return decided

@@ -14,6 +14,8 @@ from dataclasses import dataclass, field
 from enum import StrEnum
 from typing import Any, Protocol
 
+from triage.run.verdicts import COMPARED, Verdict
+
 
 class Action(StrEnum):
     """What the run recommends doing next."""
@@ -146,6 +148,29 @@ class ForeignOutputs:
                 "first_line": self.first_line}
 
 
+@dataclass
+class Coverage:
+    """How many failed rows the verdict mix rests on: the compared ones (search, model, tie) of all
+    failed rows; skipped and blocked rows are failed but not compared. Derived from the counts."""
+
+    failed: int
+    compared: int
+    skipped: int
+    blocked: int
+    share: float | None  # compared / failed (None: no failed row)
+
+    @classmethod
+    def of(cls, counts: dict[str, int]) -> Coverage:
+        compared = sum(counts.get(v, 0) for v in COMPARED)
+        skipped, blocked = counts.get(Verdict.SKIPPED, 0), counts.get(Verdict.BLOCKED, 0)
+        failed = compared + skipped + blocked
+        return cls(failed, compared, skipped, blocked, compared / failed if failed else None)
+
+    def to_json(self) -> dict[str, Any]:
+        return {"failed": self.failed, "compared": self.compared, "skipped": self.skipped, "blocked": self.blocked,
+                "share": self.share}
+
+
 STUDY_KEYS = ("length_penalty", "widen", "beam_curve", "where_lost", "exact", "reproduction")  # in order
 
 
@@ -176,6 +201,7 @@ class Summary:
     outputs_at_length_limit: int
     outputs_not_from_these_settings: ForeignOutputs
     signature: str | None = None   # the whole run's signature, when the run has one
+    coverage: Coverage | None = None  # failed rows compared; always derived from `counts` (set on creation)
     recommendation: Recommendation | None = None
     sweeps_interrupted: bool | None = None  # set when the sweeps ran
     length_penalty: StudySection | None = None  # LengthPenaltySection
@@ -185,6 +211,9 @@ class Summary:
     exact: StudySection | None = None           # ExactSection
     reproduction: StudySection | None = None    # ReproductionSection (the outputs check, --check-rows)
     extra: dict[str, Any] = field(default_factory=dict)  # keys of a newer or other writer, kept as read
+
+    def __post_init__(self) -> None:
+        self.coverage = Coverage.of(self.counts)
 
     def studies(self) -> dict[str, StudySection]:
         """The study sections that ran, by summary key, in summary.json's order."""
@@ -210,6 +239,8 @@ class Summary:
             "outputs_at_length_limit": self.outputs_at_length_limit,
             "outputs_not_from_these_settings": self.outputs_not_from_these_settings.to_json(),
         })
+        self.coverage = Coverage.of(self.counts)  # the counts may have changed since the Summary was made
+        out["coverage"] = self.coverage.to_json()
         if self.recommendation is not None:
             out["recommendation"] = self.recommendation.to_json()
         if self.sweeps_interrupted is not None:
@@ -227,7 +258,7 @@ class Summary:
         sections = sections or {}
         known = {"tool", "model", "data", "settings", "objective", "signature", "options", "counts", "failed",
                  "search_share", "buckets", "score_gap", "corpus_metric", "skipped_reasons",
-                 "outputs_at_length_limit", "outputs_not_from_these_settings", "recommendation",
+                 "outputs_at_length_limit", "outputs_not_from_these_settings", "coverage", "recommendation",
                  "sweeps_interrupted", *STUDY_KEYS}
         rec = d.get("recommendation")
         studies = {k: _read_section(sections.get(k), d[k]) for k in STUDY_KEYS if d.get(k) is not None}
