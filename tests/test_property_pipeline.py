@@ -83,7 +83,7 @@ def test_every_row_once_in_order(rows, step, page_rows, tiny_model_dir, capsys):
         for v in counts:
             assert counts[v] == sum(r["verdict"] == v for r in got)
         assert counts.get("correct", 0) == sum(r[3].split() == r[2].split() for r in rows)
-        assert sum(summary["skipped_reasons"].values()) == counts.get("skipped", 0)
+        assert sum(k["count"] for k in summary["skipped_reasons"].values()) == counts.get("skipped", 0)
         html = (out / "report.html").read_text(encoding="utf-8")
         assert html.rstrip().endswith("</html>")
         # the page's own script is its only one: no markup from the data got through unescaped

@@ -14,6 +14,7 @@ from dataclasses import dataclass, field
 from enum import StrEnum
 from typing import Any, Protocol
 
+from triage.run.reasons import sentence
 from triage.run.verdicts import COMPARED, Verdict
 
 
@@ -149,6 +150,27 @@ class ForeignOutputs:
 
 
 @dataclass
+class SkipKind:
+    """One kind of skip reason (summary.json's skipped_reasons[code]): its rows and one sentence
+    (triage.run.reasons.sentence); each row's own detail is in verdicts.csv's reason."""
+
+    count: int
+    sentence: str
+
+    def to_json(self) -> dict[str, Any]:
+        return {"count": self.count, "sentence": self.sentence}
+
+    @classmethod
+    def of(cls, code: str, value: Any) -> SkipKind:
+        """From a count (as the run tallies it, or as an older summary.json wrote it) or {count, sentence}."""
+        if isinstance(value, SkipKind):
+            return value
+        if isinstance(value, dict):
+            return cls(int(value["count"]), str(value.get("sentence") or sentence(code)))
+        return cls(int(value), sentence(code))
+
+
+@dataclass
 class Coverage:
     """How many failed rows the verdict mix rests on: the compared ones (search, model, tie) of all
     failed rows; skipped and blocked rows are failed but not compared. Derived from the counts."""
@@ -197,7 +219,7 @@ class Summary:
     buckets: list[Bucket]
     score_gap: ScoreGap
     corpus_metric: CorpusMetric
-    skipped_reasons: dict[str, int]  # reason code (triage.run.reasons) -> rows, most frequent first
+    skipped_reasons: dict[str, SkipKind]  # reason code (triage.run.reasons) -> rows and sentence, most first
     outputs_at_length_limit: int
     outputs_not_from_these_settings: ForeignOutputs
     signature: str | None = None   # the whole run's signature, when the run has one
@@ -214,6 +236,7 @@ class Summary:
 
     def __post_init__(self) -> None:
         self.coverage = Coverage.of(self.counts)
+        self.skipped_reasons = {k: SkipKind.of(k, v) for k, v in self.skipped_reasons.items()}  # counts -> kinds
 
     def studies(self) -> dict[str, StudySection]:
         """The study sections that ran, by summary key, in summary.json's order."""
@@ -235,7 +258,7 @@ class Summary:
             "buckets": [b.to_json() for b in self.buckets],
             "score_gap": self.score_gap.to_json(),
             "corpus_metric": self.corpus_metric.to_json(),
-            "skipped_reasons": dict(self.skipped_reasons),
+            "skipped_reasons": {k: SkipKind.of(k, v).to_json() for k, v in self.skipped_reasons.items()},
             "outputs_at_length_limit": self.outputs_at_length_limit,
             "outputs_not_from_these_settings": self.outputs_not_from_these_settings.to_json(),
         })
