@@ -184,3 +184,42 @@ def test_outputs_check_skips_sources_longer_than_the_model():
     rep = check_outputs(tm, settings, sample)
     assert len(tm.tokenize_sources([long_src])[0]) > most  # the plant is too long
     assert rep.too_long == 1 and rep.checked == 1
+
+
+def test_beam_8_outputs_claimed_as_beam_2(capsys, tmp_path):
+    """Outputs decoded by the tool at beam 8, then triaged as if decoded at beam 2: the outputs
+    check measures the share and warns below 90%; each differing row's decode at beam 2 is what
+    transformers' own generate gives at beam 2."""
+    import torch
+    from transformers import AutoModelForSeq2SeqLM, AutoTokenizer
+
+    dev = _devset().iloc[:160].drop(columns=["output"])
+    src_path = tmp_path / "src.tsv"
+    dev.to_csv(src_path, sep="\t", index=False, quoting=csv.QUOTE_NONE)
+    rc, _, err = _cli(capsys, "--model", str(MODEL), "--data", str(src_path), "--out", str(tmp_path / "b8"),
+                      "--beam", "8")
+    assert rc == 0, err
+    b8 = pd.read_csv(tmp_path / "b8" / "verdicts.csv", dtype=str, keep_default_na=False)
+    dev["output"] = b8["output"].tolist()
+    path = tmp_path / "claimed.tsv"
+    dev.to_csv(path, sep="\t", index=False, quoting=csv.QUOTE_NONE)
+    out = tmp_path / "o"
+    rc, _, err = _cli(capsys, "--model", str(MODEL), "--data", str(path), "--out", str(out), "--beam", "2",
+                      "--check-rows", "16")
+    s = json.loads((out / "summary.json").read_text(encoding="utf-8"))
+    rep = s["reproduction"]
+    assert rep["checked"] == 16
+    share = rep["reproduced_share"]
+    assert share < 0.9 and rep["differing_rows"] == 16 - rep["reproduced"]
+    assert f"{share:.0%} of the sampled failed outputs" in err  # the warning line
+    # outside check: transformers' own beam search at width 2 gives each differing row's decode
+    tok = AutoTokenizer.from_pretrained(str(MODEL))
+    hf = AutoModelForSeq2SeqLM.from_pretrained(str(MODEL)).eval()
+    by_line = {int(r["line"]): r for r in rep["differing"]}
+    sources = [dev["source"].iat[line - 2] for line in by_line]  # line 1 is the header
+    with torch.inference_mode():
+        gen = hf.generate(**tok(sources, return_tensors="pt", padding=True), num_beams=2)
+    texts = tok.batch_decode(gen, skip_special_tokens=True)
+    for (line, r), text in zip(by_line.items(), texts, strict=True):
+        assert " ".join(text.split()) == " ".join(r["decoded"].split()), line
+        assert r["given"] == dev["output"].iat[line - 2]
