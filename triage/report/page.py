@@ -20,7 +20,7 @@ import pandas as pd
 from markupsafe import Markup
 
 from triage.display import finite as _finite
-from triage.display import fmt_interval, fmt_num, fmt_pct, fmt_value
+from triage.display import fmt_interval, fmt_num, fmt_pct, fmt_value, get_path
 from triage.report import charts
 from triage.run.summary import Action, Summary
 from triage.run.verdicts import COMPARED
@@ -83,25 +83,11 @@ COLUMN_LABELS = {
 
 
 # ------------------------------------------------------------------------ formatting (triage.display)
-def _get(d: Any, path: str) -> Any:
-    """The value at a dotted summary.json path, in a dict or in a typed section (its fields are the keys)."""
-    for part in path.split("."):
-        if isinstance(d, dict):
-            d = d.get(part)
-        elif isinstance(d, list) and part.isdigit() and int(part) < len(d):
-            d = d[int(part)]
-        elif dataclasses.is_dataclass(d) and not isinstance(d, type) and part in {f.name for f in dataclasses.fields(d)}:
-            d = getattr(d, part)
-        else:
-            return None
-    return d
-
-
 def _num_markup(summary: Summary):
     """num(path, kind): the value at `path` in summary.json, shown formatted, tagged with its path."""
 
     def num(path: str, kind: str = "int") -> Markup:
-        v = _get(summary, path)
+        v = get_path(summary, path)
         text = {"int": lambda x: fmt_num(x, 0), "pct": fmt_pct, "float": lambda x: fmt_num(x, 3)}[kind](v)
         raw = "" if v is None else json.dumps(v)
         return Markup('<span class="n" data-key="{}" data-value="{}">{}</span>').format(path, raw, text)
