@@ -564,13 +564,7 @@ def smallest_width_keeping(model: SequenceModel, settings: DecoderSettings, sour
         if not groups:
             break
         for width, rows in sorted(groups.items()):
-            hs = beam_search(model, settings.replace(beam=width), [source_ids[i] for i in rows],
-                             batch_size=batch_size, track=[ref_ids[i] for i in rows])
-            for i, h in zip(rows, hs, strict=True):
-                if h.reference_kept:
-                    kept_at[i] = width
-                else:
-                    lost_at[i] = width
+            run(width, rows)  # width lies above lost_at[i], so run's max() records it as the new lower end
     for i in todo:
         lp = result[i]
         assert lp is not None
