@@ -103,7 +103,7 @@ def test_model_directory_missing(capsys, tmp_path, good_tsv):
     assert str(missing) in line and "not found" in line
 
 
-def test_decoder_only_model_refused(capsys, tmp_path, good_tsv):
+def test_decoder_only_model_without_tokenizer_refused(capsys, tmp_path, good_tsv):
     from transformers import GPT2Config, GPT2LMHeadModel
 
     torch.manual_seed(0)
@@ -113,7 +113,18 @@ def test_decoder_only_model_refused(capsys, tmp_path, good_tsv):
     rc, _, err = _run(capsys, "--model", str(d), "--data", str(good_tsv), "--out", str(tmp_path / "o"))
     assert rc == 2
     line = _one_error_line(err)
-    assert "not an encoder-decoder model" in line and "gpt2" in line and str(d) in line
+    assert "tokenizer" in line and "save_pretrained" in line and str(d) in line
+
+
+def test_model_neither_encoder_decoder_nor_decoder_only_refused(capsys, tmp_path, good_tsv):
+    from transformers import ViTConfig
+
+    d = tmp_path / "vit"
+    ViTConfig(hidden_size=16, num_hidden_layers=1, num_attention_heads=2, intermediate_size=32).save_pretrained(d)
+    rc, _, err = _run(capsys, "--model", str(d), "--data", str(good_tsv), "--out", str(tmp_path / "o"))
+    assert rc == 2
+    line = _one_error_line(err)
+    assert "neither an encoder-decoder nor a decoder-only" in line and "vit" in line and str(d) in line
 
 
 def test_tokenizer_files_missing(capsys, tmp_path, good_tsv, tiny_model_dir):

@@ -36,6 +36,9 @@ RULE_NAMES = {
 
 
 def rule_name(processor: Any) -> str:
+    """The rule's plain name; a processor a backend wraps (``wrapped``, e.g. to show it the prompt)
+    is named by the processor inside."""
+    processor = getattr(processor, "wrapped", processor)
     return RULE_NAMES.get(type(processor).__name__, type(processor).__name__)
 
 
@@ -79,14 +82,13 @@ def apply_rules(processors: Any, prefixes: torch.Tensor, logprobs: torch.Tensor)
 
 
 def first_blocking_rule(processors: Any, prefixes: torch.Tensor, logprobs: torch.Tensor, token: int, row: int) -> str:
-    """Name of the first rule that sets `token` to minus infinity for `row`."""
-    scores = logprobs[row : row + 1].clone()
-    ids = prefixes[row : row + 1]
+    """Name of the first rule that sets `token` to minus infinity for `row`.
+
+    The rules run one by one over the whole batch (each row's result depends on that row only),
+    since some read per-row data of the batch they were built for (source n-grams, prompts)."""
+    scores = logprobs.clone()
     for proc in processors:
-        try:
-            scores = proc(ids, scores)
-        except Exception:  # a processor that needs the whole batch (encoder n-grams): fall back
-            return rule_name(proc)
-        if torch.isneginf(scores[0, token]):
+        scores = proc(prefixes, scores)
+        if torch.isneginf(scores[row, token]):
             return rule_name(proc)
     return "decoding rule"

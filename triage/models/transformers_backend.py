@@ -15,7 +15,7 @@ from typing import Any
 
 import torch
 
-from triage.errors import ModelError
+from triage.errors import ModelError, OptionValueError
 from triage.models.api import Generated
 from triage.settings import DecoderSettings
 
@@ -75,6 +75,15 @@ def model_fingerprint(model_dir: Path) -> str:
         with open(model_dir / name, "rb") as fh:
             for chunk in iter(lambda: fh.read(1 << 20), b""):
                 h.update(chunk)
+    return h.hexdigest()
+
+
+def weights_fingerprint(model: Any) -> str:
+    """sha256 over a model's weights held in memory (names and bytes, in name order)."""
+    h = hashlib.sha256()
+    for k, v in sorted(model.state_dict().items()):
+        h.update(k.encode())
+        h.update(v.detach().cpu().contiguous().numpy().tobytes())
     return h.hexdigest()
 
 
@@ -147,14 +156,8 @@ class TransformersModel:
 
     def fingerprint(self) -> str:
         if self._fingerprint is None:
-            if self.model_dir is not None:
-                self._fingerprint = model_fingerprint(self.model_dir)
-            else:
-                h = hashlib.sha256()
-                for k, v in sorted(self.model.state_dict().items()):
-                    h.update(k.encode())
-                    h.update(v.detach().cpu().contiguous().numpy().tobytes())
-                self._fingerprint = h.hexdigest()
+            self._fingerprint = (model_fingerprint(self.model_dir) if self.model_dir is not None
+                                 else weights_fingerprint(self.model))
         return self._fingerprint
 
     # -------------------------------------------------------------- what the checkpoint says
@@ -447,28 +450,10 @@ def length_groups(lengths: Sequence[int], slack: float = 1.1, min_tokens: int = 
     return groups
 
 
-def load_transformers_model(name_or_path: str, *, device: str = "cpu", allow_pickle: bool = False,
-                            trust_remote_code: bool = False) -> TransformersModel:
-    """Load a local encoder-decoder checkpoint with transformers' Auto classes (never downloads)."""
-    os.environ.setdefault("HF_HUB_OFFLINE", "1")
-    os.environ.setdefault("TRANSFORMERS_OFFLINE", "1")
-    model_dir = resolve_model_dir(name_or_path)
-    if not (model_dir / "config.json").is_file():
-        raise ModelError("no config.json in the model directory", path=str(model_dir))
-    from transformers import AutoConfig, AutoModelForSeq2SeqLM, AutoTokenizer
-    from transformers.utils import logging as hf_logging
+def load_tokenizer(model_dir: Path, trust_remote_code: bool = False) -> Any:
+    """The checkpoint's tokenizer (AutoTokenizer, local files only), or a one-line ModelError."""
+    from transformers import AutoTokenizer
 
-    hf_logging.disable_progress_bar()
-    hf_logging.set_verbosity_error()
-
-    try:
-        config = AutoConfig.from_pretrained(model_dir, local_files_only=True, trust_remote_code=trust_remote_code)
-    except Exception as exc:  # transformers raises many kinds here
-        raise ModelError(f"config.json cannot be read: {str(exc).splitlines()[0]}", path=str(model_dir)) from exc
-    if not getattr(config, "is_encoder_decoder", False):
-        raise ModelError(f"not an encoder-decoder model (model_type {config.model_type!r})", path=str(model_dir),
-                         hint="triage scores sequence-to-sequence checkpoints loadable with AutoModelForSeq2SeqLM")
-    _check_weights(model_dir, allow_pickle)
     try:
         tokenizer = AutoTokenizer.from_pretrained(model_dir, local_files_only=True, trust_remote_code=trust_remote_code)
     except Exception as exc:
@@ -481,6 +466,50 @@ def load_transformers_model(name_or_path: str, *, device: str = "cpu", allow_pic
                          hint="the model directory must hold the tokenizer files saved with save_pretrained") from exc
     if tokenizer is None or isinstance(tokenizer, bool):
         raise ModelError("tokenizer missing", path=str(model_dir))
+    if len(tokenizer) < 2:  # transformers makes an empty tokenizer of the config's kind when no file is there
+        raise ModelError(f"the tokenizer holds {len(tokenizer)} token(s): no tokenizer files in the model directory",
+                         path=str(model_dir),
+                         hint="save the tokenizer beside the weights with tokenizer.save_pretrained(model_dir)")
+    return tokenizer
+
+
+def load_transformers_model(name_or_path: str, *, device: str = "cpu", allow_pickle: bool = False,
+                            trust_remote_code: bool = False, prompt_template: str | None = None,
+                            chat_template: bool = False, system: str | None = None) -> Any:
+    """Load a local checkpoint with transformers' Auto classes (never downloads): an encoder-decoder
+    model as TransformersModel, a decoder-only one as CausalModel (causal_backend.py) with the
+    prompt format the options give (a template with {source}, or the tokenizer's chat template)."""
+    os.environ.setdefault("HF_HUB_OFFLINE", "1")
+    os.environ.setdefault("TRANSFORMERS_OFFLINE", "1")
+    model_dir = resolve_model_dir(name_or_path)
+    if not (model_dir / "config.json").is_file():
+        raise ModelError("no config.json in the model directory", path=str(model_dir))
+    from transformers import AutoConfig, AutoModelForCausalLM, AutoModelForSeq2SeqLM
+    from transformers.utils import logging as hf_logging
+
+    hf_logging.disable_progress_bar()
+    hf_logging.set_verbosity_error()
+
+    try:
+        config = AutoConfig.from_pretrained(model_dir, local_files_only=True, trust_remote_code=trust_remote_code)
+    except Exception as exc:  # transformers raises many kinds here
+        raise ModelError(f"config.json cannot be read: {str(exc).splitlines()[0]}", path=str(model_dir)) from exc
+    from triage.models.causal_backend import load_causal_model, prompt_format
+
+    prompt = prompt_format(prompt_template, chat_template, system)
+    decoder_only = not getattr(config, "is_encoder_decoder", False)
+    if decoder_only and type(config) not in AutoModelForCausalLM._model_mapping:
+        raise ModelError(f"neither an encoder-decoder nor a decoder-only language model (model_type "
+                         f"{config.model_type!r})", path=str(model_dir),
+                         hint="triage scores checkpoints loadable with AutoModelForSeq2SeqLM or AutoModelForCausalLM")
+    if prompt is not None and not decoder_only:
+        raise OptionValueError("prompt_template" if prompt.template else "chat_template",
+                               f"applies to decoder-only models only; {model_dir} is an encoder-decoder model")
+    _check_weights(model_dir, allow_pickle)
+    tokenizer = load_tokenizer(model_dir, trust_remote_code)
+    if decoder_only:
+        return load_causal_model(model_dir, prompt, tokenizer=tokenizer, device=device, allow_pickle=allow_pickle,
+                                 trust_remote_code=trust_remote_code)
     try:
         model = AutoModelForSeq2SeqLM.from_pretrained(
             model_dir, local_files_only=True, trust_remote_code=trust_remote_code,

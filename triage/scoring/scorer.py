@@ -40,7 +40,7 @@ RULES_LOGITS_BUDGET = 1 << 26
 #: are planned (end token, length limit), how log-probs are computed or summed, the objective,
 #: how rules block a target, what is skipped and why. Pure speed-ups that keep every number
 #: (tests/test_scoring_speedups.py) need no bump.
-SCORING_VERSION = 2
+SCORING_VERSION = 3
 
 
 @dataclass
@@ -208,7 +208,10 @@ def _score_batch(model, settings, requests, batch, by_row, results) -> None:
 
     src = _source_tensor(model, [requests[batch[b]].source_ids for b in index])
     processors = build_processors(model, settings, src)
-    if not processors and capabilities(model).target_logprob_scoring:
+    ends = end_ids(model, settings)
+    # with several end tokens a target ends with whichever the decoder prefers there (any ends it)
+    ending = {k: len(job[2]) - 1 for k, job in enumerate(meta) if len(ends) > 1 and not job[3]}
+    if not processors and not ending and capabilities(model).target_logprob_scoring:
         token_lp = model.forced_target_logprobs(state, inputs, labels).float()
         for k, job in enumerate(meta):
             _store(settings, results, job, token_lp[k, : len(job[2])].tolist(), None)
@@ -220,11 +223,16 @@ def _score_batch(model, settings, requests, batch, by_row, results) -> None:
     for t in range(width):
         prefixes = inputs[:, : t + 1]
         step = apply_rules(processors, prefixes, full[:, t, :])
+        for k, last in ending.items():
+            if last == t:
+                labels[k, t] = ends[int(step[k, list(ends)].argmax())]
         token_lp[:, t] = step.gather(-1, labels[:, t : t + 1]).squeeze(-1)
         for k in torch.nonzero(torch.isneginf(token_lp[:, t])).flatten().tolist():
             if k not in blocked_by and t < len(labels_list[k]):
                 blocked_by[k] = first_blocking_rule(processors, prefixes, full[:, t, :], int(labels[k, t]), k)
     for k, job in enumerate(meta):
+        if k in ending:
+            job = (*job[:2], labels[k, : len(job[2])].tolist(), *job[3:])
         _store(settings, results, job, token_lp[k, : len(job[2])].tolist(), blocked_by.get(k))
 
 
@@ -244,6 +252,8 @@ def _score_batch_tree(model, settings, requests, batch, by_row, results) -> None
     slots: list[dict[int, int]] = []     # node -> {token: column in node_tokens}
     reads: list[list[tuple[int, int]]] = []  # job -> (node, column) per scored token
     metas = []
+    alts: dict[int, list[int]] = {}      # job -> columns of every end token at its last node
+    ends = end_ids(model, settings)
     for b, i in enumerate(batch):
         children: dict[tuple[int, int], int] = {}
         root = -1
@@ -277,6 +287,13 @@ def _score_batch_tree(model, settings, requests, batch, by_row, results) -> None
                 for t, n in enumerate(path):
                     if node_at[n][0] < 0:
                         node_at[n] = (r, t)
+            if len(ends) > 1 and not job[3]:  # several end tokens: any ends the target (the best is read)
+                last = path[-1]
+                for e in ends:
+                    if e not in slots[last]:
+                        slots[last][e] = len(node_tokens[last])
+                        node_tokens[last].append(e)
+                alts[len(metas)] = [slots[last][e] for e in ends]
             reads.append([(n, slots[n][tok]) for n, tok in zip(path, labels, strict=True)])
             metas.append(job)
     if run_labels:
@@ -296,9 +313,22 @@ def _score_batch_tree(model, settings, requests, batch, by_row, results) -> None
     else:
         values = []
     pos = 0
-    for job, rd in zip(metas, reads, strict=True):
-        _store(settings, results, job, values[pos : pos + len(rd)], None)
+    for k, (job, rd) in enumerate(zip(metas, reads, strict=True)):
+        lps = values[pos : pos + len(rd)]
+        if k in alts:
+            node = rd[-1][0]
+            options = [float(lp[node, c]) for c in alts[k]]
+            best = max(range(len(ends)), key=lambda e: options[e])
+            lps[-1] = options[best]
+            job = (*job[:2], list(job[2][:-1]) + [ends[best]], *job[3:])
+        _store(settings, results, job, lps, None)
         pos += len(rd)
+
+
+def end_ids(model: SequenceModel, settings: DecoderSettings) -> tuple[int, ...]:
+    """The tokens that end a target: the decoder's end tokens (model.end_id first), any of them."""
+    ends = [int(model.end_id)] + [int(e) for e in settings.eos_token_ids if int(e) != int(model.end_id)]
+    return tuple(ends)
 
 
 def _new_node(node_at, node_tokens, slots) -> int:
