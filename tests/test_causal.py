@@ -284,3 +284,17 @@ def test_prompt_options_exclude_each_other():
     assert err.value.option == "system"
     assert prompt_format() is None
     assert prompt_format(prompt_template="Q: {source} {source}") == PromptFormat(template="Q: {source} {source}")
+
+
+def test_default_length_limit_is_generates():
+    # source: transformers' generate on a decoder-only model with no length given: 20 new tokens after a
+    # prompt of any length (its max_length counts the prompt, so triage reads only max_new_tokens)
+    hf, tok = make_causal("gpt2", seed=1, end_bias=-50.0)  # the end token never wins
+    m = CausalModel(hf, tok, PromptFormat(template=TEMPLATE))
+    assert hf.generation_config.max_new_tokens is None
+    settings = model_settings(m)
+    for n in (3, 12):
+        ids = torch.full((1, n), 10, dtype=torch.long)
+        with torch.no_grad():
+            out = hf.generate(input_ids=ids, attention_mask=torch.ones_like(ids), do_sample=False)
+        assert out.shape[1] - n == settings.limit_new_tokens() == 20

@@ -61,6 +61,20 @@ def build_parser() -> argparse.ArgumentParser:
     g.add_argument("--trust-remote-code", action="store_true",
                    help="allow the checkpoint's own Python code (off by default)")
 
+    g = r.add_argument_group(
+        "prompt (decoder-only checkpoints only; an error for any other model)",
+        "A decoder-only model (AutoModelForCausalLM) reads a prompt made from the source; the reference\n"
+        "and the output are completions of it, and only completion tokens are scored (end token included).\n"
+        "Every other flag means the same for every model family: output and reference lengths,\n"
+        "--max-new-tokens and the length penalty count completion tokens (source-tokens buckets count the\n"
+        "prompt's), and --prefix goes before the source inside the prompt.")
+    g.add_argument("--prompt-template", metavar="TEXT",
+                   help="the prompt as a format string with {source}, e.g. 'Translate to German: {source}\\nGerman:' "
+                   "(\\n is a newline, \\t a tab; default: the source itself)")
+    g.add_argument("--chat-template", action="store_true",
+                   help="render the source as one user message with the tokenizer's own chat template")
+    g.add_argument("--system", metavar="TEXT", help="with --chat-template: a system message before the user message")
+
     g = r.add_argument_group("dev set")
     g.add_argument("--data", metavar="FILE", help="dev set as .tsv (with header), .csv or .jsonl")
     g.add_argument("--format", choices=("tsv", "tsv-raw", "tsv-quoted", "csv", "jsonl"),
@@ -79,7 +93,8 @@ def build_parser() -> argparse.ArgumentParser:
     g.add_argument("--penalty", choices=("power", "gnmt", "none"),
                    help="length-penalty form: power = len**alpha (transformers), gnmt = ((5+len)/6)**alpha, "
                    "none = plain sum")
-    g.add_argument("--max-new-tokens", type=int, metavar="N", help="decoder's length limit (tokens)")
+    g.add_argument("--max-new-tokens", type=int, metavar="N",
+                   help="decoder's length limit (tokens it generates; for a decoder-only model, completion tokens)")
     g.add_argument("--early-stopping", type=_bool_or_never, metavar="true|false|never",
                    help="beam search stopping rule")
     g.add_argument("--prefix", default=None, metavar="TEXT", help="task prefix added to each source (T5 style)")
@@ -170,7 +185,17 @@ def _check_out_dir(out_dir: Path) -> None:
 
 
 FLAGS = {"chunk_rows": "--chunk-rows", "page_rows": "--page-rows", "max_rows": "--max-rows", "beam": "--beam",
-         "check_rows": "--check-rows"}
+         "check_rows": "--check-rows", "prompt_template": "--prompt-template", "chat_template": "--chat-template",
+         "system": "--system"}
+
+
+def _unescape(text: str | None) -> str | None:
+    """A prompt flag's text with \\n, \\t and \\\\ read as a newline, a tab and a backslash."""
+    if text is None:
+        return None
+    import re
+
+    return re.sub(r"\\([nt\\])", lambda m: {"n": "\n", "t": "\t", "\\": "\\"}[m.group(1)], text)
 
 
 def cmd_run(a: argparse.Namespace) -> int:
@@ -213,7 +238,9 @@ def cmd_run(a: argparse.Namespace) -> int:
         outcome = triage_run(a.model, stream, overrides, options, studies=plan, out=out_dir, page_rows=a.page_rows,
                              command="triage " + " ".join(sys.argv[1:]),
                              load=dict(device=a.device, allow_pickle=a.allow_pickle,
-                                       trust_remote_code=a.trust_remote_code),
+                                       trust_remote_code=a.trust_remote_code,
+                                       prompt_template=_unescape(a.prompt_template), chat_template=a.chat_template,
+                                       system=_unescape(a.system)),
                              on_note=lambda text: print(f"triage: {text}", file=sys.stderr))
     except OptionValueError as exc:  # the library names its parameter, the command line its flag
         raise OptionError(f"{FLAGS.get(exc.option, exc.option)} {exc.detail}") from None

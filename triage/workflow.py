@@ -163,7 +163,8 @@ def triage_run(
 
     model: a SequenceModel, or a spec for load_model (a checkpoint directory, a name in the local
     Hugging Face cache, python:module:factory), loaded with the keywords in `load` (device,
-    allow_pickle, trust_remote_code). data: a dev-set file, a stream_devset stream, a DevSet or a
+    allow_pickle, trust_remote_code; for a decoder-only checkpoint prompt_template, chat_template,
+    system). data: a dev-set file, a stream_devset stream, a DevSet or a
     DataFrame. settings: DecoderSettings, or overrides of the checkpoint's own settings (beam,
     alpha, penalty, max_new_tokens, early_stopping, source_prefix); None: the checkpoint's.
     out: the run folder to write (verdicts.csv, summary.json, tokens.jsonl, run.json,
@@ -212,6 +213,8 @@ def triage_run(
                 writer.add(result.verdicts, result.tokens)
         else:
             result, tables = _streamed(model, dev, settings, options, plan, info, writer, sample)
+        if spec is not None:  # described again after the run: a decoder-only model names its first row's prompt
+            result.summary.model = model_info(model, spec)
         _check_outputs(model, result, sample, options)
         result.summary.recommendation = recommend(result.summary)  # once, from the whole summary
         run_info: dict[str, Any] = {}

@@ -3,7 +3,8 @@
 ``load_model("python:package.module:factory")`` imports the module and calls ``factory()``,
 which must return an object with triage's SequenceModel interface (triage/models/api.py).
 The current directory is searched after the usual import path, so a module file beside the
-data works. Anything else is a local transformers checkpoint (hf_backend).
+data works. Anything else is a local transformers checkpoint: encoder-decoder ones go to
+transformers_backend, decoder-only ones (AutoModelForCausalLM) to causal_backend.
 """
 
 from __future__ import annotations
@@ -13,7 +14,7 @@ import os
 import sys
 from typing import Any
 
-from triage.errors import ModelError
+from triage.errors import ModelError, OptionValueError
 from triage.models.api import SequenceModel
 
 PREFIX = "python:"
@@ -86,13 +87,23 @@ def load_python_model(spec: str) -> SequenceModel:
     return check_model(obj, spec)
 
 
+#: loader keywords that describe a decoder-only model's prompt (causal_backend.prompt_format)
+PROMPT_OPTIONS = ("prompt_template", "chat_template", "system")
+
+
 def load_model(spec: str, **kw: Any) -> SequenceModel:
     """A SequenceModel from 'python:package.module:factory' or a local checkpoint directory.
 
-    Keyword arguments (device, allow_pickle, trust_remote_code) go to the transformers loader;
-    a Python factory is called without arguments.
+    Keyword arguments (device, allow_pickle, trust_remote_code; for a decoder-only checkpoint the
+    prompt: prompt_template, chat_template, system) go to the transformers loader, which reads an
+    encoder-decoder checkpoint with transformers_backend and a decoder-only one with
+    causal_backend. A Python factory is called without arguments (its model renders its own
+    sources, so a prompt option is an error).
     """
     if spec.startswith(PREFIX):
+        given = [k for k in PROMPT_OPTIONS if kw.get(k) not in (None, False)]
+        if given:
+            raise OptionValueError(given[0], f"applies to decoder-only transformers checkpoints only, not to {spec}")
         return load_python_model(spec)
     from triage.models.transformers_backend import load_transformers_model
 

@@ -71,7 +71,8 @@ SETTINGS_LABELS = [
     ("origin", "settings taken from"),
 ]
 MODEL_LABELS = [("path", "model directory"), ("sha256", "sha256 of the model files"),
-                ("fingerprint", "fingerprint (sha256 of the weights)"), ("tokenizer", "tokenizer")]
+                ("fingerprint", "fingerprint (sha256 of the weights)"), ("tokenizer", "tokenizer"),
+                ("prompt", "prompt (decoder-only model)"), ("prompt_example", "prompt of the first row")]
 DATA_LABELS = [("path", "data file"), ("sha256", "sha256 of the data file"), ("format", "format"),
                ("rows", "rows read"), ("outputs", "outputs")]
 COLUMN_LABELS = {
