@@ -233,14 +233,26 @@ def test_every_path_gives_the_same_numbers(cm, sources):
 
 
 def test_grouped_prompts_equal_one_padded_batch(cm):
-    # source: a plain forward pass per prompt: the grouped, re-joined prompt state gives the same log-probs
+    # source: a plain forward pass per prompt: the prompts run in length groups, joined into one state
+    # padded on the left, give the same next-token log-probs and the same completion scores
+    from triage.models.transformers_backend import length_groups
+
     g = torch.Generator().manual_seed(3)
-    prompts = [torch.randint(8, cm.vocab_size, (n,), generator=g).tolist() for n in (2, 30, 3, 25, 9)]
+    lengths = [2, 60, 3, 45, 9, 33, 70, 5] * 5
+    prompts = [torch.randint(8, cm.vocab_size, (n,), generator=g).tolist() for n in lengths]
+    assert len(length_groups(lengths)) > 1
     state = cm.encode_grouped(prompts)
+    targets = [torch.randint(8, cm.vocab_size, (4,), generator=g).tolist() for _ in prompts]
+    inputs = torch.tensor([[cm.start_id] + t[:-1] for t in targets])
+    picks = torch.arange(len(prompts) * 4)
+    labels = torch.tensor(targets).reshape(-1, 1)
+    got = cm.score_positions(state, torch.arange(len(prompts)), inputs, picks, labels, lengths=[4] * len(prompts))
     for k, p in enumerate(prompts):
         with torch.no_grad():
-            want = torch.log_softmax(cm.model(input_ids=torch.tensor([p])).logits[0, -1].float(), -1)
-        assert torch.allclose(state.last[state.rows[k]], want, atol=1e-5)
+            logp = torch.log_softmax(cm.model(input_ids=torch.tensor([p + targets[k][:-1]])).logits[0].float(), -1)
+        assert torch.allclose(state.last[state.rows[k]], logp[len(p) - 1], atol=1e-5)
+        want = [float(logp[len(p) - 1 + t, x]) for t, x in enumerate(targets[k])]
+        assert got[k * 4 : k * 4 + 4, 0].tolist() == pytest.approx(want, abs=1e-5)
 
 
 # ---------------------------------------------------------------------------------- prompts
@@ -298,3 +310,40 @@ def test_default_length_limit_is_generates():
         with torch.no_grad():
             out = hf.generate(input_ids=ids, attention_mask=torch.ones_like(ids), do_sample=False)
         assert out.shape[1] - n == settings.limit_new_tokens() == 20
+
+
+def test_exact_search_finds_the_brute_force_best(cm, sources):
+    # source: every completion of at most 2 tokens scored by a plain forward pass + log_softmax (the
+    # completions the decoder can return: ended by the end token, or cut by the limit of 2 tokens)
+    from triage.decoding.exact import exact_search
+
+    settings = model_settings(cm, beam=2, alpha=0.7, max_new_tokens=2)
+    words = [t for t in range(cm.vocab_size) if t not in (0, 2, 3, 4, 5, 6, STOP, END)]
+    for prompt in cm.tokenize_sources(sources[:2]):
+        with torch.no_grad():
+            first = torch.log_softmax(cm.model(input_ids=torch.tensor([prompt])).logits[0, -1].float(), -1)
+            batch = torch.tensor([prompt + [w] for w in words])
+            second = torch.log_softmax(cm.model(input_ids=batch).logits[:, -1].float(), -1)
+        best = (float(first[END]), [])  # the empty completion: the end token alone, length 1
+        for k, w in enumerate(words):
+            best = max(best, ((float(first[w]) + float(second[k, END])) / 2 ** 0.7, [w]))  # ended
+            top = int(second[k, words].argmax())
+            best = max(best, ((float(first[w]) + float(second[k, words[top]])) / 2 ** 0.7, [w, words[top]]))
+        got = exact_search(cm, settings, prompt)
+        assert got.status == "proven"
+        assert got.best_tokens == best[1]
+        assert got.best_score == pytest.approx(best[0], abs=1e-5)
+
+
+def test_head_fallback_gives_the_same_numbers(sources):
+    # source: a plain forward pass per target; a model whose head the check refuses uses its full forward
+    m = build("llama")
+    assert m._head() is True  # a Llama head is the plain projection of the base model's hidden states
+    m._head_ok = False
+    src_ids = m.tokenize_sources(sources[:3])
+    targets = m.tokenize_targets(sentences(3, seed=12, lo=1, hi=6))
+    got = score_requests(m, model_settings(m, beam=2), [ScoreRequest(s, [t, t[:1]]) for s, t in
+                                                        zip(src_ids, targets, strict=True)])
+    for s, t, row in zip(src_ids, targets, got, strict=True):
+        for ids, res in zip([t, t[:1]], row, strict=True):
+            assert res.logprobs == pytest.approx(plain_logprobs(m, s, ids + [m.end_id]), abs=1e-5)
