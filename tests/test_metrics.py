@@ -5,6 +5,7 @@ tests/test_streaming.py checks that summed statistics over any split equal sacre
 pyproject.toml pins, and the texts a real run meets that the property test never draws (an empty
 output, punctuation, non-Latin script, a row whose extra reference is missing) agree with
 sacrebleu's public top-level `corpus_chrf` / `corpus_bleu` functions, split and whole.
+Word and character error rates are checked against jiwer's `wer` / `cer` on the same strings.
 """
 
 from __future__ import annotations
@@ -53,3 +54,59 @@ def test_awkward_texts_match_sacrebleu_public_corpus_functions(name):
     score, signature = stats.score()
     assert score == pytest.approx(want, abs=1e-9)
     assert "nrefs:var" in signature  # rows with one and with two references, as sacrebleu writes it
+
+
+# ------------------------------------------------------------------ word and character error rate (jiwer)
+WER_CASES = [
+    ("the train to north is late", "the train to north is late"),
+    ("the train to north is late", "a train north is now late"),
+    ("platform four", "platform for four"),
+    ("Stop, please!", "stop please"),
+    ("", "an insertion"),
+    ("only the reference", ""),
+]
+
+
+def test_wer_and_cer_equal_jiwer_on_the_same_strings():
+    import jiwer
+
+    from triage.run.metrics import corpus, sentence_scores
+
+    refs = [r for r, _ in WER_CASES]
+    outs = [o for _, o in WER_CASES]
+    for name, ref_fn in (("wer", jiwer.wer), ("cer", jiwer.cer)):
+        got = sentence_scores(name, outs, [[r] for r in refs])
+        assert got == [pytest.approx(100 * ref_fn(r, o)) for r, o in WER_CASES]  # jiwer, one pair at a time
+        score, sig = corpus(name, outs, [[r] for r in refs])
+        full = [(r, o) for r, o in WER_CASES if r]  # jiwer's corpus rate over lists (it needs non-empty references)
+        part, _ = corpus(name, [o for _, o in full], [[r] for r, _ in full])
+        assert part == pytest.approx(100 * ref_fn([r for r, _ in full], [o for _, o in full]))
+        assert sig.startswith(f"{name}|jiwer:")
+
+
+def test_error_rates_stream_and_take_the_closest_reference():
+    import jiwer
+
+    from triage.run.metrics import CorpusStats, corpus, sentence_scores
+
+    outs = ["a b c", "x y", "one two three four"]
+    refs = [["a b d", "a b c"], ["x z"], ["one two three", "one"]]
+    assert sentence_scores("wer", outs, refs) == pytest.approx([0.0, 50.0, 100 * 1 / 3])
+    whole = corpus("wer", outs, refs)[0]
+    closest = [r[0] if jiwer.wer(r[0], o) <= jiwer.wer(r[-1], o) else r[-1] for o, r in zip(outs, refs, strict=True)]
+    assert whole == pytest.approx(100 * jiwer.wer(closest, outs))
+    parts = CorpusStats("wer")
+    for k in range(3):
+        parts.add(outs[k : k + 1], refs[k : k + 1])
+    assert parts.score()[0] == whole
+
+
+def test_basic_normalization_is_lower_case_without_punctuation_or_extra_space():
+    from triage.run.metrics import gain, higher_is_better, normalize_text, reaches
+
+    assert normalize_text("  Platform 4,  NORTH!  ", "basic") == "platform 4 north"
+    assert normalize_text("  Platform 4,  NORTH!  ", "none") == "  Platform 4,  NORTH!  "
+    assert not higher_is_better("wer") and higher_is_better("chrf")
+    assert reaches("wer", 10.0, 10.0) and not reaches("wer", 10.5, 10.0)
+    assert reaches("chrf", 60.0, 50.0) and not reaches("chrf", 40.0, 50.0)
+    assert gain("wer", -2.0) == 2.0 and gain("bleu", -2.0) == -2.0

@@ -60,6 +60,11 @@ def build_parser() -> argparse.ArgumentParser:
                    help="allow weights in a pickle-based format (.bin/.pt); pickles can run code")
     g.add_argument("--trust-remote-code", action="store_true",
                    help="allow the checkpoint's own Python code (off by default)")
+    g.add_argument("--language", metavar="LANG",
+                   help="speech models (multilingual Whisper): the language token of the decoder prompt, e.g. en "
+                   "(default: the generation config's)")
+    g.add_argument("--task", choices=("transcribe", "translate"),
+                   help="speech models (multilingual Whisper): the task token of the decoder prompt")
 
     g = r.add_argument_group(
         "prompt (decoder-only checkpoints only; an error for any other model)",
@@ -100,9 +105,16 @@ def build_parser() -> argparse.ArgumentParser:
     g.add_argument("--prefix", default=None, metavar="TEXT", help="task prefix added to each source (T5 style)")
 
     g = r.add_argument_group("failures, verdicts and buckets")
-    g.add_argument("--metric", choices=("chrf", "bleu"), default="chrf", help="sentence metric (sacrebleu)")
-    g.add_argument("--below", type=float, metavar="X",
-                   help="count a row as failed only if it differs from every reference AND its metric is below X")
+    g.add_argument("--metric", choices=("chrf", "bleu", "wer", "cer"), default="chrf",
+                   help="sentence and corpus metric: chrf, bleu (sacrebleu; higher is better), wer, cer (jiwer, "
+                   "percent; lower is better)")
+    g.add_argument("--accept-at", "--below", type=float, metavar="X", dest="accept_at",
+                   help="a row that differs from every reference still counts as correct when its sentence metric "
+                   "reaches X: at least X for chrf/bleu, at most X for wer/cer (--below is the older name)")
+    g.add_argument("--normalize", choices=("none", "basic"), default="none",
+                   help="text normalization of references and outputs before a row is called correct and before "
+                   "the metric: basic = lower case, punctuation removed, whitespace collapsed (default none; the "
+                   "scored texts are never changed)")
     g.add_argument("--margin", type=float, default=None, metavar="M",
                    help="tie margin: a score gap (reference score minus output score) within M of 0 is a tie (default 1e-4)")
     g.add_argument("--buckets", default=None, metavar="EDGES",
@@ -186,7 +198,7 @@ def _check_out_dir(out_dir: Path) -> None:
 
 FLAGS = {"chunk_rows": "--chunk-rows", "page_rows": "--page-rows", "max_rows": "--max-rows", "beam": "--beam",
          "check_rows": "--check-rows", "prompt_template": "--prompt-template", "chat_template": "--chat-template",
-         "system": "--system"}
+         "system": "--system", "language": "--language", "task": "--task"}
 
 
 def _unescape(text: str | None) -> str | None:
@@ -218,7 +230,7 @@ def cmd_run(a: argparse.Namespace) -> int:
     stream = stream_devset(a.data, source=a.source, references=a.reference or None, output=a.output,
                            columns=_columns(a.column) or None, fmt=a.format)
     out_dir = Path(a.out) if a.out else Path("reports") / stream.name
-    options = TriageOptions(metric=a.metric, below=a.below, margin=DEFAULT_MARGIN if a.margin is None else a.margin,
+    options = TriageOptions(metric=a.metric, accept_at=a.accept_at, normalize=a.normalize, margin=DEFAULT_MARGIN if a.margin is None else a.margin,
                             bucket_by=a.bucket_by, token_budget=a.token_budget, progress=not a.quiet,
                             chunk_rows=a.chunk_rows)
     if edges:
@@ -240,7 +252,7 @@ def cmd_run(a: argparse.Namespace) -> int:
                              load=dict(device=a.device, allow_pickle=a.allow_pickle,
                                        trust_remote_code=a.trust_remote_code,
                                        prompt_template=_unescape(a.prompt_template), chat_template=a.chat_template,
-                                       system=_unescape(a.system)),
+                                       system=_unescape(a.system), language=a.language, task=a.task),
                              on_note=lambda text: print(f"triage: {text}", file=sys.stderr))
     except OptionValueError as exc:  # the library names its parameter, the command line its flag
         raise OptionError(f"{FLAGS.get(exc.option, exc.option)} {exc.detail}") from None

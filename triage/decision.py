@@ -18,6 +18,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from triage.run.analysis import search_share
+from triage.run.metrics import gain
 from triage.run.summary import Action, Recommendation, Summary
 from triage.run.verdicts import FAILED, Verdict
 from triage.studies.length_penalty import LengthPenaltySection
@@ -94,7 +95,7 @@ class Evidence:
         mr = self.best.model_rows if self.best is not None else None
         if mr is None or not mr.worse:
             return ""
-        return f"; it lowers {self.metric} on {mr.worse} of {mr.rows} model-side rows"
+        return f"; it worsens {self.metric} on {mr.worse} of {mr.rows} model-side rows"
 
 
 def recommend(summary: Summary, min_rows: int = MIN_ROWS) -> Recommendation:
@@ -156,10 +157,11 @@ def _length_penalty_case(ev: Evidence) -> tuple[Recommendation | None, str]:
     if not done:
         return Recommendation(Action.TUNE_LENGTH_PENALTY, because,
                               [f"decoding at {penalty} alpha {alpha:g} to confirm (--redecode-alpha)"]), lp_text
-    r = max(done, key=lambda r: (r.corpus_delta, -abs(r.alpha - alpha)))
+    name = metric_name(lp, ev.widen)
+    r = max(done, key=lambda r: (gain(name, r.corpus_delta), -abs(r.alpha - alpha)))
     delta, r_alpha = r.corpus_delta, r.alpha
-    because += f"; decoding at alpha {r_alpha:g} changes {metric_name(lp, ev.widen)} by {delta:+.1f} on {r.rows} rows"
-    if delta > 0:
+    because += f"; decoding at alpha {r_alpha:g} changes {name} by {delta:+.1f} on {r.rows} rows"
+    if gain(name, delta) > 0:  # an improvement: up for chrF / BLEU, down for WER / CER
         return Recommendation(Action.TUNE_LENGTH_PENALTY, because), lp_text
     return None, lp_text + f", but decoding at alpha {r_alpha:g} changes the metric by {delta:+.1f}"
 
@@ -174,7 +176,7 @@ def _search_side_case(ev: Evidence) -> Recommendation:
     if ev.best is None:
         return Recommendation(Action.INCONCLUSIVE, f"{share}, but no wider beam was measured", wider)
     resolved = ev.best.resolved_share
-    if resolved >= 0.25 and ev.best.corpus_delta >= 0:
+    if resolved >= 0.25 and gain(ev.metric, ev.best.corpus_delta) >= 0:
         return Recommendation(Action.WIDEN_BEAM, ev.widen_numbers() + ev.widen_worse())
     if resolved >= 0.25:
         return Recommendation(Action.INCONCLUSIVE, f"{share} and {ev.widen_numbers()}{ev.widen_worse()}",
@@ -202,7 +204,7 @@ def _model_side_case(ev: Evidence, lp_text: str) -> Recommendation:
 
 def _split_case(ev: Evidence, lp_text: str) -> Recommendation:
     """Neither side has half of the compared failures."""
-    if ev.best and ev.best.resolved_share >= 0.5 and ev.best.corpus_delta > 0:
+    if ev.best and ev.best.resolved_share >= 0.5 and gain(ev.metric, ev.best.corpus_delta) > 0:
         return Recommendation(Action.WIDEN_BEAM, f"failures split ({ev.s_share:.0%} search-side, {ev.m_share:.0%} "
                               f"model-side of {ev.compared}); " + ev.widen_numbers() + ev.widen_worse())
     missing = []

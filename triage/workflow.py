@@ -25,7 +25,7 @@ from typing import Any
 from triage.decision import recommend, settings_mismatch
 from triage.errors import InputError, OptionError, OptionValueError, check_at_least_one
 from triage.models.describe import model_info, model_settings
-from triage.run.pipeline import TriageOptions, TriageResult, run_triage
+from triage.run.pipeline import TriageOptions, TriageResult, check_audio, run_triage
 from triage.run.summary import Summary
 from triage.rundir.writer import RunWriter, check_out_dir
 from triage.settings import DecoderSettings
@@ -195,6 +195,7 @@ def triage_run(
 
         model = load_model(spec, **dict(load or {}))
     settings = _settings(model, settings)
+    check_audio(model, dev)  # a speech model's clips, all checked before any scoring
     # the studies' options are checked before anything is scored, so a typo costs no scoring time
     widths = _widths(plan.widen, settings.beam) if plan.widen else None
     alphas = _alphas(plan.alpha_grid) if plan.alpha_grid else None

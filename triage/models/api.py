@@ -39,6 +39,9 @@ probes its attributes.
                             with (else: greedy, length limit ``max_target_tokens`` or 19)
 ``Described``               ``describe()``: what the report says about the model (path,
                             architecture, parameters, tokenizer, vocabulary size)
+``AudioSources``            sources are audio files (a speech model): ``sampling_rate``,
+                            ``max_audio_seconds``, ``use_audio_folder``, ``audio_problem``,
+                            ``audio_seconds`` (else: sources are text)
 ==========================  ===============================================================
 """
 
@@ -173,6 +176,28 @@ class Described(Protocol):
         ...
 
 
+@runtime_checkable
+class AudioSources(Protocol):
+    """A model whose sources are audio files (paths relative to the dev-set file, or absolute)."""
+
+    #: samples per second the model's feature extractor takes (files are resampled to it)
+    sampling_rate: int
+    #: longest clip the model reads, in seconds (None: no limit)
+    max_audio_seconds: float | None
+
+    def use_audio_folder(self, folder: Any) -> None:
+        """Relative audio paths start in this folder (the dev-set file's; None: the current directory)."""
+        ...
+
+    def audio_problem(self, source: str) -> str | None:
+        """Why the model cannot read this source's audio (missing, unreadable, empty, too long), or None."""
+        ...
+
+    def audio_seconds(self, source: str) -> float | None:
+        """The clip's duration in seconds (None when it cannot be read)."""
+        ...
+
+
 @dataclass(frozen=True)
 class Capabilities:
     """Which optional capabilities a model offers (see the module docstring)."""
@@ -184,6 +209,7 @@ class Capabilities:
     own_decoder: bool = False
     default_settings: bool = False
     described: bool = False
+    audio_sources: bool = False
 
     def names(self) -> list[str]:
         return [f.name for f in fields(self) if getattr(self, f.name)]
@@ -198,6 +224,7 @@ PROTOCOLS: dict[str, type] = {
     "own_decoder": OwnDecoder,
     "default_settings": DefaultSettings,
     "described": Described,
+    "audio_sources": AudioSources,
 }
 
 

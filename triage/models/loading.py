@@ -89,6 +89,8 @@ def load_python_model(spec: str) -> SequenceModel:
 
 #: loader keywords that describe a decoder-only model's prompt (causal_backend.prompt_format)
 PROMPT_OPTIONS = ("prompt_template", "chat_template", "system")
+#: loader keywords that choose a speech model's decoder prompt (speech_backend)
+SPEECH_OPTIONS = ("language", "task")
 
 
 def load_model(spec: str, **kw: Any) -> SequenceModel:
@@ -97,11 +99,13 @@ def load_model(spec: str, **kw: Any) -> SequenceModel:
     Keyword arguments (device, allow_pickle, trust_remote_code; for a decoder-only checkpoint the
     prompt: prompt_template, chat_template, system) go to the transformers loader, which reads an
     encoder-decoder checkpoint with transformers_backend and a decoder-only one with
-    causal_backend. A Python factory is called without arguments (its model renders its own
-    sources, so a prompt option is an error).
+    causal_backend; a speech-to-text checkpoint (AutoModelForSpeechSeq2Seq: Whisper, Speech2Text)
+    goes to speech_backend, with language and task for a multilingual Whisper's prompt. A Python
+    factory is called without arguments (its model renders its own sources, so a prompt option is
+    an error).
     """
     if spec.startswith(PREFIX):
-        given = [k for k in PROMPT_OPTIONS if kw.get(k) not in (None, False)]
+        given = [k for k in (*PROMPT_OPTIONS, *SPEECH_OPTIONS) if kw.get(k) not in (None, False)]
         if given:
             raise OptionValueError(given[0], f"applies to decoder-only transformers checkpoints only, not to {spec}")
         return load_python_model(spec)

@@ -63,12 +63,12 @@ def resolve_model_dir(name_or_path: str) -> Path:
                      hint="pass a local checkpoint folder, or a name already in the local Hugging Face cache")
 
 
-def model_fingerprint(model_dir: Path) -> str:
-    """sha256 over the files that decide the model's scores, in a fixed order."""
+def model_fingerprint(model_dir: Path, files: Sequence[str] = FINGERPRINT_FILES) -> str:
+    """sha256 over the files that decide the model's scores (`files` and the weights), in a fixed order."""
     h = hashlib.sha256()
     names = sorted(
         f.name for f in model_dir.iterdir()
-        if f.is_file() and (f.name in FINGERPRINT_FILES or f.suffix in WEIGHT_SAFE + WEIGHT_PICKLE)
+        if f.is_file() and (f.name in files or f.suffix in WEIGHT_SAFE + WEIGHT_PICKLE)
     )
     for name in names:
         h.update(name.encode() + b"\0")
@@ -475,10 +475,13 @@ def load_tokenizer(model_dir: Path, trust_remote_code: bool = False) -> Any:
 
 def load_transformers_model(name_or_path: str, *, device: str = "cpu", allow_pickle: bool = False,
                             trust_remote_code: bool = False, prompt_template: str | None = None,
-                            chat_template: bool = False, system: str | None = None) -> Any:
+                            chat_template: bool = False, system: str | None = None, language: str | None = None,
+                            task: str | None = None) -> Any:
     """Load a local checkpoint with transformers' Auto classes (never downloads): an encoder-decoder
     model as TransformersModel, a decoder-only one as CausalModel (causal_backend.py) with the
-    prompt format the options give (a template with {source}, or the tokenizer's chat template)."""
+    prompt format the options give (a template with {source}, or the tokenizer's chat template), a
+    speech-to-text one (AutoModelForSpeechSeq2Seq) as SpeechModel (speech_backend.py; language and
+    task choose a multilingual Whisper's decoder prompt)."""
     os.environ.setdefault("HF_HUB_OFFLINE", "1")
     os.environ.setdefault("TRANSFORMERS_OFFLINE", "1")
     model_dir = resolve_model_dir(name_or_path)
@@ -494,6 +497,17 @@ def load_transformers_model(name_or_path: str, *, device: str = "cpu", allow_pic
         config = AutoConfig.from_pretrained(model_dir, local_files_only=True, trust_remote_code=trust_remote_code)
     except Exception as exc:  # transformers raises many kinds here
         raise ModelError(f"config.json cannot be read: {str(exc).splitlines()[0]}", path=str(model_dir)) from exc
+    from triage.models.speech_backend import is_speech_config, load_speech_model
+
+    if is_speech_config(config):
+        if prompt_template or chat_template or system:
+            raise OptionValueError("prompt_template" if prompt_template else "chat_template" if chat_template
+                                   else "system", f"applies to decoder-only models only; {model_dir} is a speech model")
+        return load_speech_model(model_dir, config, device=device, allow_pickle=allow_pickle,
+                                 trust_remote_code=trust_remote_code, language=language, task=task)
+    if language or task:
+        raise OptionValueError("language" if language else "task",
+                               f"applies to speech models only; {model_dir} is a {config.model_type} model")
     from triage.models.causal_backend import load_causal_model, prompt_format
 
     prompt = prompt_format(prompt_template, chat_template, system)

@@ -14,6 +14,7 @@ import hashlib
 import json
 import math
 from array import array
+from pathlib import PurePath
 from typing import Any
 
 import pandas as pd
@@ -22,6 +23,7 @@ from markupsafe import Markup
 from triage.display import finite as _finite
 from triage.display import fmt_interval, fmt_num, fmt_pct, fmt_value, get_path
 from triage.report import charts
+from triage.run.metrics import higher_is_better
 from triage.run.summary import Action, Summary
 from triage.run.verdicts import COMPARED
 from triage.settings import DecoderSettings
@@ -230,6 +232,10 @@ def _rows(failed: pd.DataFrame, by_id: dict[str, dict[str, Any]], metric: str,
             ref_pen=_penalty(settings, r.get("ref_len")),
             out_pen=_penalty(settings, r.get("out_len")),
         )
+        if "audio_seconds" in r:  # an audio source: its file name and duration (no audio, no link on the page)
+            secs = r.get("audio_seconds")
+            name = PurePath(str(r.get("source") or "").strip()).name
+            row["source"] = f"{name} · audio, {fmt_num(secs, 2)} s" if _finite(secs) else f"{name} · audio"
         out.append(row)
     return out
 
@@ -378,7 +384,7 @@ def render_page(summary: Summary, page: PageRows, run_info: dict[str, Any]) -> s
     settings_items, settings_unset = _labelled(s, SETTINGS_LABELS, ("beam", "penalty", "alpha"), skip_unset=True)
     return env.get_template("report.html.j2").render(
         s=summary, run=run_info, rows=rows, n_rows=page.rows, n_failed=page.failed, per_verdict=page.per_verdict,
-        metric=metric,
+        metric=metric, metric_reach="at least" if higher_is_better(metric) else "at most",
         counts=counts, buckets=buckets, verdict_order=[v for v in VERDICT_ORDER if v in counts] or list(VERDICT_ORDER),
         labels=charts.LABELS, colours=charts.COLOURS, ink=charts.INK,
         action=action, action_text=ACTIONS.get(action, action), action_meaning=ACTION_MEANING.get(action, ""),

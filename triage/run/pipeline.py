@@ -38,7 +38,7 @@ from triage.run.analysis import (
     bucket_table_from_counts,
     search_share,
 )
-from triage.run.metrics import CorpusStats, sentence_scores
+from triage.run.metrics import CorpusStats, higher_is_better, reaches, sentence_scores
 from triage.run.progress import bar as _bar
 from triage.run.signature import run_signature
 from triage.run.summary import (
@@ -72,7 +72,12 @@ class TriageOptions:
     """How failures are found and grouped (the objective itself is in DecoderSettings)."""
 
     metric: str = "chrf"
-    below: float | None = None          # also require sentence metric < below to count as failed
+    #: a row that differs from every reference still counts as correct when its sentence metric reaches this:
+    #: at least accept_at for chrF / BLEU, at most accept_at for WER / CER (the CLI's --accept-at; --below)
+    accept_at: float | None = None
+    below: float | None = None          # the older name of accept_at (both hold the same value)
+    #: text normalization of references and outputs before "correct" and the metric (triage.run.metrics)
+    normalize: str = "none"
     margin: float = DEFAULT_MARGIN
     edges: tuple[int, ...] = DEFAULT_EDGES
     bucket_by: str = "ref-words"
@@ -80,6 +85,18 @@ class TriageOptions:
     progress: bool = True
     cache_dir: str | None = None        # score cache folder (None: no cache)
     chunk_rows: int = 1000              # dev-set rows per step: decoded, scored, cached and written together
+
+    def __post_init__(self) -> None:
+        from triage.errors import OptionError
+        from triage.run.metrics import NORMALIZATIONS
+
+        if self.accept_at is not None and self.below is not None and self.accept_at != self.below:
+            raise OptionError(f"accept_at ({self.accept_at:g}) and its older name below ({self.below:g}) disagree",
+                              hint="give one of them")
+        threshold = self.accept_at if self.accept_at is not None else self.below
+        self.accept_at = self.below = threshold
+        if self.normalize not in NORMALIZATIONS:
+            raise OptionError(f"unknown normalization {self.normalize!r}", hint="use one of: " + ", ".join(NORMALIZATIONS))
 
 
 @dataclass
@@ -118,7 +135,7 @@ class Tally:
         self.gaps = array("d")              # score gap of every compared row, in input order
         self.skipped: dict[str, int] = {}   # reason code -> rows, in order of first appearance
         self.at_limit = 0
-        self.corpus = CorpusStats(options.metric)
+        self.corpus = CorpusStats(options.metric, options.normalize)
         self.decoded = False
         self.foreign: dict[str, int] = {}   # rule -> failed rows whose output it forbids
         self.foreign_line: int | None = None  # the first such row's line
@@ -182,6 +199,7 @@ def run_triage(
     settings = settings or model_settings(model)
     check_at_least_one("chunk_rows", options.chunk_rows)
     steps, total = _frames(devset, options.chunk_rows)
+    audio = _audio_sources(model, devset)
     consumers = [on_step] if callable(on_step) else list(on_step)
     tally = Tally(options)
     parts: list[pd.DataFrame] = []
@@ -193,6 +211,8 @@ def run_triage(
     try:
         with _bar(total, "triage", options.progress) as bar:
             for frame in steps:
+                if audio is not None:
+                    audio.check(frame)
                 part = _triage_step(model, frame, settings, options, done, cache, counts, bar.update)
                 tally.add(part)
                 for consume in consumers:
@@ -216,12 +236,57 @@ def run_triage(
     return TriageResult(verdicts, buckets, summary, tokens, settings, options, kept, stats)
 
 
+class _Audio:
+    """The audio sources of a run (a model with the AudioSources capability): relative paths start at the
+    dev-set file's folder; each step's files are checked before anything is done with them."""
+
+    def __init__(self, model, devset):
+        from triage.data.audio import devset_folder
+
+        self.model = model
+        self.name = getattr(devset, "path", None) or "dev set"
+        model.use_audio_folder(devset_folder(getattr(devset, "path", None)))
+
+    def check(self, frame: pd.DataFrame) -> None:
+        """An InputError (dev-set file, line, the audio path, what is wrong) for the step's first bad clip."""
+        from triage.data.audio import resolve
+        from triage.errors import InputError
+
+        lines = frame["line"].tolist() if "line" in frame else [None] * len(frame)
+        for source, line in zip(frame["source"].tolist(), lines, strict=True):
+            problem = self.model.audio_problem(source)
+            if problem:
+                path = resolve(source, self.model.audio_folder)
+                raise InputError(f"audio {source.strip()!r} ({path}): {problem}", path=self.name,
+                                 line=int(line) if line is not None else None,
+                                 hint="every source must name a readable audio file, relative to the dev-set file")
+
+
+def check_audio(model, devset, chunk_rows: int = 10000) -> None:
+    """For a model whose sources are audio: read every row's clip information once, before anything is
+    scored, and raise the first bad one (missing, unreadable, empty, longer than the model's window) as
+    an InputError naming the dev-set file, the line and the audio path. Nothing to do for a text model."""
+    audio = _audio_sources(model, devset)
+    if audio is None:
+        return
+    steps, _ = _frames(devset, chunk_rows)
+    for frame in steps:
+        audio.check(frame)
+
+
+def _audio_sources(model, devset) -> _Audio | None:
+    from triage.models.api import capabilities
+
+    return _Audio(model, devset) if capabilities(model).audio_sources else None
+
+
 def _triage_step(model, frame: pd.DataFrame, settings: DecoderSettings, options: TriageOptions, offset: int,
                  cache, counts: dict[str, int], progress: Callable[[int], Any] = lambda k: None) -> ChunkResult:
     """One step: rows offset .. offset + len(frame) - 1 of the dev set. `progress(k)` is told
     of each row finished (rows to decode as they are decoded, the others at the end); `counts`
     of the step's rows and failed rows the moment their scores are committed to the cache."""
     n = len(frame)
+    audio = _is_audio(model)  # sources are audio files: verdicts.csv gets each clip's duration
     sources = [settings.source_prefix + s for s in frame["source"].tolist()]
     references = [list(r) for r in frame["references"].tolist()]
     src_ids = model.tokenize_sources(sources) if n else []
@@ -235,13 +300,14 @@ def _triage_step(model, frame: pd.DataFrame, settings: DecoderSettings, options:
         for i, d in zip(todo, dec, strict=True):
             outputs[i] = d.text
 
-    # ---- which rows failed
-    metric_values = sentence_scores(options.metric, outputs, references) if n else []
+    # ---- which rows failed (after the text normalization; the scored texts stay as they are)
+    how = options.normalize
+    metric_values = sentence_scores(options.metric, outputs, references, normalize=how) if n else []
     failed = []
     for i in range(n):
-        wrong = not matches_any(outputs[i], references[i])
-        if wrong and options.below is not None:
-            wrong = metric_values[i] < options.below
+        wrong = not matches_any(outputs[i], references[i], normalize=how)
+        if wrong and options.accept_at is not None:
+            wrong = not reaches(options.metric, metric_values[i], options.accept_at)
         failed.append(wrong)
 
     # ---- score the failed rows: every reference and the output, one encoder pass per row
@@ -290,8 +356,10 @@ def _triage_step(model, frame: pd.DataFrame, settings: DecoderSettings, options:
         ref_texts = references[i]
         best = 0
         if not failed[i]:
-            row.update(verdict="correct", reason="output matches a reference" if matches_any(outputs[i], ref_texts)
-                       else f"{options.metric} {metric_values[i]:.1f} >= {options.below:g}", reason_code="")
+            reach = ">=" if higher_is_better(options.metric) else "<="
+            row.update(verdict="correct", reason="output matches a reference" if matches_any(outputs[i], ref_texts,
+                                                                                           normalize=how)
+                       else f"{options.metric} {metric_values[i]:.1f} {reach} {options.accept_at:g}", reason_code="")
             ref_s = out_s = None
         else:
             targets = by_row[i]
@@ -324,6 +392,8 @@ def _triage_step(model, frame: pd.DataFrame, settings: DecoderSettings, options:
         row["out_words"] = len(outputs[i].split())
         row[options.metric] = round(metric_values[i], 6)
         row["source"] = frame["source"].iat[i]
+        if audio:
+            row["audio_seconds"] = _seconds(model.audio_seconds(row["source"]))
         row["reference"] = ref_texts[best]
         row["output"] = outputs[i]
         rows.append(row)
@@ -338,6 +408,16 @@ def _triage_step(model, frame: pd.DataFrame, settings: DecoderSettings, options:
                         [assign_bucket(int(x), options.edges) for x in verdicts["bucket_length"]])
     progress(n - len(todo))
     return ChunkResult(offset, verdicts, tokens, kept, outputs, references, bool(todo), foreign)
+
+
+def _is_audio(model) -> bool:
+    from triage.models.api import capabilities
+
+    return capabilities(model).audio_sources
+
+
+def _seconds(value: float | None) -> float:
+    return round(float(value), 3) if value is not None else math.nan
 
 
 def _special_ids(model) -> set[int]:
@@ -510,8 +590,9 @@ def _summary(tally: Tally, buckets, settings, options, devset, model, model_info
         settings=settings.to_dict(),
         objective=settings.signature(),
         signature=run_signature(settings, options, sig),  # the whole run: objective, version, rules, metric
-        options=OptionsInfo(metric=options.metric, below=options.below, margin=options.margin,
-                            bucket_edges=list(options.edges), bucket_by=options.bucket_by),
+        options=OptionsInfo(metric=options.metric, below=options.accept_at, margin=options.margin,
+                            bucket_edges=list(options.edges), bucket_by=options.bucket_by,
+                            normalize=options.normalize),
         counts=counts,
         failed=failed,
         search_share=SearchShare(k, n, k / n if n else None, list(_ci(k, n))),

@@ -38,7 +38,12 @@ class RunRules(Protocol):
 def run_signature(settings: DecoderSettings, rules: RunRules, metric_signature: str,
                   version: str = __version__) -> str:
     """The whole run's signature; ``metric_signature`` is sacrebleu's (empty when no row was scored)."""
-    fail = "differs" if rules.below is None else f"differs,{rules.metric}<{float(rules.below)!r}"
+    from triage.run.metrics import higher_is_better
+
+    norm = getattr(rules, "normalize", "none")
+    fail = "differs" if norm == "none" else f"differs({norm})"
+    if rules.below is not None:  # the threshold a failed row's metric does not reach
+        fail += f",{rules.metric}{'<' if higher_is_better(rules.metric) else '>'}{float(rules.below)!r}"
     metric = f"{rules.metric}:{metric_signature}" if metric_signature else rules.metric
     parts = [
         f"triage={version}",

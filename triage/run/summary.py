@@ -71,14 +71,19 @@ class OptionsInfo:
     """How failures were found and grouped (summary.json's "options")."""
 
     metric: str
-    below: float | None
+    below: float | None                 # the threshold a row's metric must reach to count as correct (--accept-at)
     margin: float
     bucket_edges: list[int]
     bucket_by: str
+    normalize: str = "none"             # text normalization before "correct" and the metric
 
     def to_json(self) -> dict[str, Any]:
-        return {"metric": self.metric, "below": self.below, "margin": self.margin,
-                "bucket_edges": list(self.bucket_edges), "bucket_by": self.bucket_by}
+        out: dict[str, Any] = {"metric": self.metric}
+        if self.normalize != "none":
+            out["normalize"] = self.normalize
+        out.update({"below": self.below, "margin": self.margin, "bucket_edges": list(self.bucket_edges),
+                    "bucket_by": self.bucket_by})
+        return out
 
 
 @dataclass

@@ -48,7 +48,13 @@ def normalize_ws(text: str) -> str:
     return " ".join(text.split())
 
 
-def matches_any(output: str, references: list[str]) -> bool:
+def matches_any(output: str, references: list[str], normalize: str = "none") -> bool:
+    """Whether the output equals a reference after whitespace normalization (and the text normalization
+    `normalize` of triage.run.metrics: "none" or "basic")."""
+    if normalize != "none":
+        from triage.run.metrics import normalize_text
+
+        output, references = normalize_text(output, normalize), [normalize_text(r, normalize) for r in references]
     out = normalize_ws(output)
     return any(out == normalize_ws(r) for r in references)
 

@@ -69,8 +69,9 @@ def sweep_beam_curve(model, result, max_beam: int, *, references, ref_kind, max_
         texts = [d.text for d in dec]
         t1 = t if t1 is None else t1
         section.points.append(CurvePoint(
-            beam=w, objective=sw.signature(), corpus=corpus(metric, texts, refs_rows)[0],
-            exact_share=sum(matches_any(x, r) for x, r in zip(texts, refs_rows, strict=True)) / len(rows),
+            beam=w, objective=sw.signature(), corpus=corpus(metric, texts, refs_rows, result.options.normalize)[0],
+            exact_share=sum(matches_any(x, r, result.options.normalize)
+                            for x, r in zip(texts, refs_rows, strict=True)) / len(rows),
             mean_output_tokens=sum(len(d.ids) for d in dec) / len(rows),
             seconds_per_row=t / len(rows), time_ratio=t / t1 if t1 > 0 else None,
         ))

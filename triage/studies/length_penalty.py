@@ -242,7 +242,7 @@ def redecode(model, result, alphas, section: LengthPenaltySection, references, m
         "source": v["source"].iloc[rows].tolist(), "references": refs, "output": [None] * len(rows),
     })
     counts_before = verdict_counts(v["verdict"].iloc[rows])
-    corpus_before = corpus(result.options.metric, v["output"].iloc[rows].tolist(), refs)[0]
+    corpus_before = corpus(result.options.metric, v["output"].iloc[rows].tolist(), refs, result.options.normalize)[0]
     opts = dataclasses.replace(result.options, progress=progress)
     for a in alphas:
         s = settings.replace(penalty=form, alpha=float(a), beam=max(settings.beam, 2))

@@ -16,7 +16,7 @@ from typing import Any
 import pandas as pd
 
 from triage.display import View, fmt_num, fmt_pct, fmt_value, table, tables
-from triage.run.metrics import corpus, sentence_scores
+from triage.run.metrics import corpus, gain, sentence_scores
 from triage.run.verdicts import matches_any
 from triage.studies.common import (
     COMPARED,
@@ -120,7 +120,7 @@ def sweep_widen(model, result, widths: Sequence[int], *, references, ref_kind, m
     state: filled with "widen" (the section) and "widen_table" (the rows so far) as they grow,
     so that an interrupted sweep keeps what finished."""
     settings, v = result.settings, result.verdicts
-    metric = result.options.metric
+    metric, how = result.options.metric, result.options.normalize
     compared = compared_rows(result)
     rows, sampled = sample(compared, max_rows, seed)
     outputs = v["output"].tolist()
@@ -129,7 +129,7 @@ def sweep_widen(model, result, widths: Sequence[int], *, references, ref_kind, m
         rows=WidenRows(failed=int(v["verdict"].isin(list(FAILED)).sum()), compared=len(compared),
                        redecoded=len(rows), sampled=sampled, seed=seed,
                        **{str(k): sum(1 for i in rows if v["verdict"].iat[i] == k) for k in COMPARED}),
-        corpus_before=corpus(metric, outputs, references)[0] if len(v) else math.nan,
+        corpus_before=corpus(metric, outputs, references, how)[0] if len(v) else math.nan,
     )
     table_rows: list[dict[str, Any]] = []
     if state is not None:
@@ -137,7 +137,7 @@ def sweep_widen(model, result, widths: Sequence[int], *, references, ref_kind, m
     if not rows:
         return section, pd.DataFrame(table_rows)
     src, refs_rows = prepare(model, result, rows, references, settings)
-    before = sentence_scores(metric, [outputs[i] for i in rows], refs_rows)
+    before = sentence_scores(metric, [outputs[i] for i in rows], refs_rows, how)
     _, t_cur, same = reproduce(model, settings, src, [outputs[i] for i in rows], f"beam {settings.beam} (timing)",
                                progress)
     section.current = CurrentWidth(beam=settings.beam, seconds_per_row=t_cur / len(rows),
@@ -150,12 +150,12 @@ def sweep_widen(model, result, widths: Sequence[int], *, references, ref_kind, m
         new_outputs = list(outputs)
         for i, r in zip(rows, per, strict=True):
             new_outputs[i] = r["output"]
-        entry = _width_entry(section, sw, per, corpus(metric, new_outputs, references)[0], t_w, t_cur,
+        entry = _width_entry(section, sw, per, corpus(metric, new_outputs, references, how)[0], t_w, t_cur,
                              result.options.margin)
         section.widths.append(entry)
         mr = entry.model_rows
         if mr.worse:
-            section.notes.append(f"beam {w} lowers {metric} on {mr.worse} of {mr.rows} model-side rows "
+            section.notes.append(f"beam {w} worsens {metric} on {mr.worse} of {mr.rows} model-side rows "
                                  f"(mean {mr.mean_delta:+.1f})")
     return section, pd.DataFrame(table_rows)
 
@@ -168,14 +168,14 @@ def _redecoded_rows(model, result, sw, rows, src, dec, references, refs_rows, be
     requests = [ScoreRequest(s, [list(d.ids)], [not d.finished]) for s, d in zip(src, dec, strict=True)]
     scored = score_requests(model, sw, requests, token_budget=result.options.token_budget)
     texts = [d.text for d in dec]
-    after = sentence_scores(metric, texts, refs_rows)
+    after = sentence_scores(metric, texts, refs_rows, result.options.normalize)
     per = []
     for k, i in enumerate(rows):
         ref_s, out_s = result.scores[i]
         new = scored[k][0]
         new_score = new.score if new.scored else math.nan
         ref_score = best_reference_score(sw, ref_s)
-        equals = matches_any(texts[k], references[i])
+        equals = matches_any(texts[k], references[i], result.options.normalize)
         resolved = equals or (math.isfinite(new_score) and new_score >= ref_score - margin)
         per.append({
             "row": i, "id": v["id"].iat[i], "verdict": v["verdict"].iat[i], "beam": int(sw.beam), "output": texts[k],
@@ -205,8 +205,8 @@ def _width_entry(section: WidenSection, sw, per, corpus_after: float, t_w: float
         changed=sum(r["changed"] for r in per),
         sentence_delta=deltas,
         model_rows=ModelRows(
-            rows=counts.model, worse=sum(r["metric_after"] < r["metric_before"] for r in model_rows),
-            better=sum(r["metric_after"] > r["metric_before"] for r in model_rows), mean_delta=deltas.model,
+            rows=counts.model, worse=sum(gain(section.metric, r["metric_after"] - r["metric_before"]) < 0 for r in model_rows),
+            better=sum(gain(section.metric, r["metric_after"] - r["metric_before"]) > 0 for r in model_rows), mean_delta=deltas.model,
             higher_score=sum(r["score"] > r["old_output_score"] + margin for r in model_rows)),
         corpus_after=corpus_after, corpus_delta=corpus_after - section.corpus_before,
         seconds_per_row=t_w / len(per), time_ratio=t_w / t_cur if t_cur > 0 else None,
