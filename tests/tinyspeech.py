@@ -75,9 +75,11 @@ def make_whisper_dir(path: Path, *, seed: int = 0, chunk_seconds: int = 2, multi
         gc.lang_to_id = {"<|en|>": ids["<|en|>"], "<|de|>": ids["<|de|>"]}
         gc.task_to_id = {"transcribe": ids["<|transcribe|>"], "translate": ids["<|translate|>"]}
         gc.language = "en"
-    # every special token but the end is suppressed, as in released checkpoints; the first token cannot be a
-    # space or the end
-    gc.suppress_tokens = [ids[s] for s in SPECIALS[1:]] + [ord("#"), ord("$")]
+    # every special token but the end is suppressed, as in released checkpoints, and so are "#", "$", control
+    # characters and the bytes above ASCII (so that outputs are valid text that tokenizes back to the same ids);
+    # the first token cannot be a space or the end
+    gc.suppress_tokens = ([ids[s] for s in SPECIALS[1:]] + [ord("#"), ord("$")] + list(range(32))
+                          + list(range(127, 256)))
     gc.begin_suppress_tokens = [tok.convert_tokens_to_ids("Ġ"), ids["<|endoftext|>"]]
     gc.max_length = max_target_positions
     for k, v in gen.items():
