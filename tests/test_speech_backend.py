@@ -56,7 +56,7 @@ def test_output_scores_equal_generate(whisper, clips, beam, alpha):
     s = whisper.default_settings.replace(beam=beam, alpha=alpha, max_new_tokens=12)
     src = whisper.tokenize_sources(clips)
     gen = whisper.generate(s, src)  # transformers' Whisper generate (sequences_scores for beam > 1)
-    assert len({len(g.ids) for g in gen}) > 1 or beam == 4  # outputs of several lengths
+    lengths.update((beam, alpha, len(g.ids)) for g in gen)
     scored = score_requests(whisper, s, [ScoreRequest(i, [g.ids], [not g.finished]) for i, g in zip(src, gen, strict=True)])
     for g, (t,) in zip(gen, scored, strict=True):
         assert t.blocked_rule is None
@@ -170,3 +170,59 @@ def test_the_source_key_is_the_audio_samples_hash(whisper, clips, tmp_path):
     a, b, c = whisper.tokenize_sources([clips[2], str(copy), clips[3]])
     assert a == b != c
     assert all(0 <= x < whisper.vocab_size for x in a)
+
+
+# ------------------------------------------------------------------ a second family: Speech2Text
+@pytest.fixture(scope="module")
+def s2t(tmp_path_factory):
+    from tinyspeech import make_s2t_dir
+
+    return load_model(str(make_s2t_dir(tmp_path_factory.mktemp("s2t") / "model", seed=0)))
+
+
+@pytest.fixture(scope="module")
+def long_clips(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("long")
+    return [str(write_tone(folder / f"s{k}.wav", 0.3 + 0.3 * k, RATES[k % 3], 1 + k % 2, freq=200 + 50 * k, seed=k))
+            for k in range(8)]
+
+
+def test_speech2text_needs_no_torchaudio_and_has_the_plain_prompt(s2t, whisper_dir):
+    import importlib.util
+
+    assert importlib.util.find_spec("torchaudio") is None  # the numpy filter bank of its feature extractor
+    assert type(s2t.model).__name__ == "Speech2TextForConditionalGeneration"
+    assert s2t.prompt_ids == [1] and capabilities(s2t).audio_sources
+    # 200 encoder positions x 4 (two stride-2 convolutions) frames of 10 ms, plus the 25 ms window
+    assert s2t.max_audio_seconds == pytest.approx((800 - 1) * 0.01 + 0.025)
+    with pytest.raises(OptionError, match="apply to Whisper"):
+        load_model(str(s2t.model_dir), language="en")
+
+
+@pytest.mark.parametrize("beam", [1, 2, 4])
+@pytest.mark.parametrize("alpha", [0.0, 0.7, 1.0])
+def test_speech2text_scores_and_beam_search_equal_generate(s2t, long_clips, beam, alpha):
+    s = s2t.default_settings.replace(beam=beam, alpha=alpha, max_new_tokens=12)
+    src = s2t.tokenize_sources(long_clips)  # clips of different lengths share a padded batch
+    gen = s2t.generate(s, src)  # transformers' generate with the feature frames' attention mask
+    # this random model ends at once unless the length penalty favours long outputs
+    assert len({len(g.ids) for g in gen}) > 1 or not (beam == 4 and alpha == 1.0)
+    scored = score_requests(s2t, s, [ScoreRequest(i, [g.ids], [not g.finished]) for i, g in zip(src, gen, strict=True)])
+    assert [t[0].score for t in scored] == pytest.approx([g.score for g in gen], abs=1e-4)
+    own = beam_search(s2t, s, src)
+    assert [list(h.tokens) for h in own] == [g.ids for g in gen]
+    assert [float(h.score) for h in own] == pytest.approx([g.score for g in gen], abs=1e-4)
+
+
+def test_speech2text_reference_logprob_equals_the_models_loss(s2t, long_clips):
+    refs = ["the train is late", "platform four", "north"]
+    src = s2t.tokenize_sources(long_clips[:3])
+    s = s2t.default_settings.replace(beam=2, alpha=0.0, max_new_tokens=20)
+    targets = s2t.tokenize_targets(refs)
+    scored = score_requests(s2t, s, [ScoreRequest(i, [t]) for i, t in zip(src, targets, strict=True)])
+    for clip_ids, t, (sc,) in zip(src, targets, scored, strict=True):
+        feats = s2t._features([clip_ids])
+        labels = torch.tensor([t + [s2t.end_id]])
+        with torch.no_grad():  # the model shifts the labels right behind its decoder start token itself
+            loss = s2t.model(**feats, labels=labels).loss
+        assert sc.logprob_sum == pytest.approx(-float(loss) * (len(t) + 1), abs=1e-4)

@@ -4,6 +4,8 @@
   config with suppress tokens, begin-suppress tokens, language and task tokens), a byte-level
   WhisperTokenizer built offline and a WhisperFeatureExtractor whose window is `chunk_seconds`
   (the encoder's positions match it: frames / 2).
+- `make_s2t_dir(path, ...)`: a random Speech2Text checkpoint folder (numpy filter-bank features, no
+  torchaudio) with a word-level tokenizer over the railway words of tinymodels.
 - `write_tone(path, seconds, rate, channels)`: a seeded tone plus noise written with soundfile.
 """
 
@@ -91,18 +93,51 @@ def make_whisper_dir(path: Path, *, seed: int = 0, chunk_seconds: int = 2, multi
     return path
 
 
-def _raise_end(model, end: int, start: int, frames: int, strength: float) -> None:
+def _raise_end(model, end: int, start: int, frames: int, strength: float, shape: tuple[int, int] = (80, 0),
+               low: int = 0, high: int = 256) -> None:
     """Point the end token's (tied) embedding along the decoder's mean output state, so that random
     outputs end at varied lengths and beams disagree."""
     g = torch.Generator().manual_seed(1)
     with torch.no_grad():
-        feats = torch.randn(4, 80, frames, generator=g)
-        dec = torch.randint(0, 256, (4, 12), generator=g)
+        dims = (shape[0], frames) if shape[1] == 0 else (frames, shape[1])
+        feats = torch.randn(4, *dims, generator=g)
+        dec = torch.randint(low, high, (4, 12), generator=g)
         dec[:, 0] = start
         hidden = model.model(input_features=feats, decoder_input_ids=dec).last_hidden_state
         mean = hidden.reshape(-1, hidden.shape[-1]).mean(0)
         w = model.get_output_embeddings().weight
         w[end] = w[end] + strength * mean / mean.norm() * w.norm(dim=1).mean()
+
+
+def make_s2t_dir(path: Path, *, seed: int = 0, eos_bias: float = 0.0, d_model: int = 16, **gen) -> Path:
+    """A random Speech2Text checkpoint in `path` (returned): 20 filter-bank bins, 2 convolutions (4x
+    subsampling), 200 encoder positions (8 s of audio), a word-level tokenizer (<pad> 0, </s> 1, <unk> 2)."""
+    from tinymodels import make_tokenizer
+    from transformers import Speech2TextConfig, Speech2TextFeatureExtractor, Speech2TextForConditionalGeneration
+
+    path = Path(path)
+    path.mkdir(parents=True, exist_ok=True)
+    tok = make_tokenizer(add_end=False)
+    fe = Speech2TextFeatureExtractor(feature_size=20, num_mel_bins=20, sampling_rate=16000)
+    torch.manual_seed(seed)
+    cfg = Speech2TextConfig(
+        vocab_size=len(tok), d_model=d_model, encoder_layers=1, decoder_layers=1, encoder_attention_heads=2,
+        decoder_attention_heads=2, encoder_ffn_dim=2 * d_model, decoder_ffn_dim=2 * d_model, max_source_positions=200,
+        max_target_positions=64, num_conv_layers=2, conv_channels=16, input_feat_per_channel=20, input_channels=1,
+        pad_token_id=0, eos_token_id=1, bos_token_id=1, decoder_start_token_id=1, init_std=0.2,
+    )
+    model = Speech2TextForConditionalGeneration(cfg).eval()
+    if eos_bias:
+        _raise_end(model, 1, 1, 100, eos_bias, shape=(0, 20), low=3, high=len(tok))
+    gc = model.generation_config
+    gc.bad_words_ids = [[0], [2]]  # never <pad> or <unk> (their text vanishes when detokenized)
+    for k, v in gen.items():
+        setattr(gc, k, v)
+    gc._from_model_config = False
+    model.save_pretrained(path)
+    tok.save_pretrained(path)
+    fe.save_pretrained(path)
+    return path
 
 
 def tone(seconds: float, rate: int, channels: int = 1, *, freq: float = 440.0, seed: int = 0) -> np.ndarray:

@@ -318,6 +318,8 @@ class SpeechModel:
                  progress: Callable[[int], None] | None = None) -> list[Generated]:
         """transformers' generate (Whisper's own) in batches; results in input order."""
         self._check_limit(settings)
+        if not self.whisper:
+            batch_size = 1  # unpadded clips, as encode sees them (see encode)
         results: list[Generated] = []
         for start in range(0, len(sources), batch_size):
             chunk = sources[start : start + batch_size]
@@ -387,10 +389,18 @@ class SpeechModel:
         if self.whisper:
             hidden = enc(input_features=feats["input_features"]).last_hidden_state
             mask = torch.ones(hidden.shape[:2], dtype=torch.long, device=self.device)
-        else:
-            hidden = enc(input_features=feats["input_features"], attention_mask=feats["attention_mask"]).last_hidden_state
-            mask = self.model.model._get_feature_vector_attention_mask(hidden.shape[1], feats["attention_mask"])
-        return {"hidden": hidden, "mask": mask.long()}
+            return {"hidden": hidden, "mask": mask}
+        # one clip at a time: the encoder's convolutions would see a shorter clip's padding frames, so a batched
+        # encoding depends on its neighbours; alone, each clip's states are its own (as the model's loss sees them)
+        frame_mask = feats["attention_mask"].long()
+        parts = []
+        for k in range(frame_mask.shape[0]):
+            n = int(frame_mask[k].sum())
+            parts.append(enc(input_features=feats["input_features"][k : k + 1, :n],
+                             attention_mask=frame_mask[k : k + 1, :n]).last_hidden_state[0])
+        hidden = torch.nn.utils.rnn.pad_sequence(parts, batch_first=True)
+        # the model's forward takes the feature frames' mask and subsamples it to the encoder's positions itself
+        return {"hidden": hidden, "mask": frame_mask}
 
     def select(self, state: dict[str, torch.Tensor], cache: Any, index: torch.Tensor) -> tuple[Any, Any]:
         index = index.to(self.device)
