@@ -3,7 +3,7 @@ PY ?= python3.11
 VENV ?= .venv
 BIN = $(VENV)/bin
 
-.PHONY: setup demo test lint bench clean
+.PHONY: setup demo demo-speech test lint bench clean
 
 $(BIN)/.installed: pyproject.toml
 	@command -v $(PY) >/dev/null 2>&1 || { echo "need $(PY) on PATH (or: make PY=python3 ...)"; exit 2; }
@@ -16,6 +16,10 @@ setup: $(BIN)/.installed
 
 demo: setup
 	$(BIN)/triage run --model sample_data/model --data sample_data/devset.tsv --out reports/demo
+
+# a seeded random tiny Whisper on synthesized tones: the mechanics of a speech run (its outputs are noise)
+demo-speech: setup
+	$(BIN)/python examples/speech_demo.py
 
 lint: setup
 	$(BIN)/ruff check triage tests benchmarks

@@ -50,6 +50,9 @@ def test_whisper_loads_as_a_speech_model_with_the_forced_prompt(whisper):
     assert whisper.max_target_tokens == 64 - 4 + 1
 
 
+lengths: set[tuple[int, float, int]] = set()  # (beam, alpha, output length) seen by the test below
+
+
 @pytest.mark.parametrize("beam", [1, 2, 4])
 @pytest.mark.parametrize("alpha", [0.0, 0.7, 1.0])
 def test_output_scores_equal_generate(whisper, clips, beam, alpha):
@@ -67,6 +70,12 @@ def test_output_scores_equal_generate(whisper, clips, beam, alpha):
             assert t.length == n
             assert g.score == pytest.approx(t.logprob_sum / n ** alpha, abs=1e-5)
             assert abs(g.score - t.logprob_sum / (n + len(whisper.prompt_ids)) ** alpha) > 1e-3
+
+
+def test_the_outputs_compared_have_several_lengths():
+    """The random model's outputs differ in length, so the length penalty is exercised (counted over the
+    parametrized runs above, which pytest runs first in this file)."""
+    assert len({n for _, _, n in lengths}) >= 3
 
 
 @pytest.mark.parametrize("beam", [1, 2, 4])

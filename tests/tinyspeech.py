@@ -113,7 +113,11 @@ def make_s2t_dir(path: Path, *, seed: int = 0, eos_bias: float = 0.0, d_model: i
     """A random Speech2Text checkpoint in `path` (returned): 20 filter-bank bins, 2 convolutions (4x
     subsampling), 200 encoder positions (8 s of audio), a word-level tokenizer (<pad> 0, </s> 1, <unk> 2)."""
     from tinymodels import make_tokenizer
-    from transformers import Speech2TextConfig, Speech2TextFeatureExtractor, Speech2TextForConditionalGeneration
+    from transformers import (
+        Speech2TextConfig,
+        Speech2TextFeatureExtractor,
+        Speech2TextForConditionalGeneration,
+    )
 
     path = Path(path)
     path.mkdir(parents=True, exist_ok=True)
