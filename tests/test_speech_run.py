@@ -148,6 +148,13 @@ def test_each_bad_clip_is_one_line_and_exit_2(whisper_dir, tmp_path, capsys, cas
     assert not (tmp_path / "run" / "verdicts.csv").exists()  # checked up front: nothing scored, nothing written
 
 
+def test_source_buckets_do_not_apply_to_audio(whisper_dir, tmp_path, capsys):
+    dev = _devset(tmp_path / "data", 2, ["x", "y"])
+    rc, _, err = _run(capsys, "--model", whisper_dir, "--data", dev, "--out", tmp_path / "r", "--bucket-by",
+                      "source-words")
+    assert rc == 2 and err.startswith("triage: error: --bucket-by source-words does not apply to audio sources")
+
+
 def test_language_and_task_flags(whisper_dir, tmp_path, capsys):
     dev = _devset(tmp_path / "data", 2, ["x", "y"])
     rc, _, err = _run(capsys, "--model", whisper_dir, "--data", dev, "--out", tmp_path / "de", "--language", "de",

@@ -198,7 +198,8 @@ def _check_out_dir(out_dir: Path) -> None:
 
 FLAGS = {"chunk_rows": "--chunk-rows", "page_rows": "--page-rows", "max_rows": "--max-rows", "beam": "--beam",
          "check_rows": "--check-rows", "prompt_template": "--prompt-template", "chat_template": "--chat-template",
-         "system": "--system", "language": "--language", "task": "--task"}
+         "system": "--system", "language": "--language", "task": "--task",
+         "bucket_by": "--bucket-by"}
 
 
 def _unescape(text: str | None) -> str | None:

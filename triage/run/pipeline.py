@@ -200,6 +200,11 @@ def run_triage(
     check_at_least_one("chunk_rows", options.chunk_rows)
     steps, total = _frames(devset, options.chunk_rows)
     audio = _audio_sources(model, devset)
+    if audio is not None and options.bucket_by.startswith("source"):
+        from triage.errors import OptionValueError
+
+        raise OptionValueError("bucket_by", f"{options.bucket_by} does not apply to audio sources; use ref-words or "
+                               "ref-tokens")
     consumers = [on_step] if callable(on_step) else list(on_step)
     tally = Tally(options)
     parts: list[pd.DataFrame] = []
