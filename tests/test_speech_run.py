@@ -198,3 +198,41 @@ def test_no_audio_row_is_lost(whisper_dir, capsys, clips, step):
         assert [float(r["audio_seconds"]) for r in got] == [pytest.approx(round(s * r) / r, abs=2e-3)
                                                             for ((r, _, s), _, _) in clips]
         assert all(r["verdict"] in ("correct", "search", "model", "tie", "blocked", "skipped") for r in got)
+
+
+def test_compare_refuses_error_rate_runs_in_one_line(whisper_dir, tmp_path, capsys):
+    dev = _devset(tmp_path / "data", 2, ["x", "y"])
+    for name in ("a", "b"):
+        rc, _, err = _run(capsys, "--model", whisper_dir, "--data", dev, "--out", tmp_path / name, "--metric", "wer")
+        assert rc == 0, err
+    capsys.readouterr()
+    rc = main(["compare", str(tmp_path / "a"), str(tmp_path / "b"), "--out", str(tmp_path / "c")])
+    err = capsys.readouterr().err
+    assert rc == 2 and len(err.splitlines()) == 1 and "measured with wer" in err and "Traceback" not in err
+
+
+def test_sweeps_on_audio_and_an_error_rate_read_as_lower_is_better(whisper_dir, tmp_path, capsys):
+    """--widen, --redecode-alpha, --where-lost and --exact re-decode audio rows (relative paths kept), the
+    sweeps report corpus WER, and the decision counts a fall in WER as a gain."""
+    import jiwer
+
+    from triage.decision import Evidence, weigh
+    from triage.run.summary import Action
+    from triage.studies import WidenSection
+
+    dev = _devset(tmp_path / "data", 6, ["th", "platform", "nort", "one two", "stop it", "a"])
+    out = tmp_path / "run"
+    rc, _, err = _run(capsys, "--model", whisper_dir, "--data", dev, "--out", out, "--beam", "1", "--metric", "wer",
+                      "--widen", "2", "--redecode-alpha", "0.5", "--where-lost", "--exact", "--no-cache")
+    assert rc == 0, err
+    summary = json.loads((out / "summary.json").read_text())
+    rows = _verdicts(out)
+    assert summary["widen"]["metric"] == "wer"
+    assert summary["widen"]["corpus_before"] == pytest.approx(
+        100 * jiwer.wer([r["reference"] for r in rows], [r["output"] for r in rows]))
+    assert summary["length_penalty"]["redecode"]
+    widen = dict(summary["widen"])
+    for delta, action in ((-3.0, Action.WIDEN_BEAM), (3.0, Action.INCONCLUSIVE)):
+        widen["widths"] = [dict(w, corpus_delta=delta, resolved_share=1.0) for w in summary["widen"]["widths"]]
+        rec = weigh(Evidence({"search": 20, "model": 5}, widen=WidenSection.from_json(widen)))
+        assert rec.action == action, (delta, rec)

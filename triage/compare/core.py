@@ -450,6 +450,11 @@ def compare_runs(run_a: str | Path, run_b: str | Path, labels: tuple[str, str] =
     """Compare two run folders (A before, B after): rows matched by id, same dev set required
     unless allow_different_data. Raises RunFolderError / DataMismatchError (one line each)."""
     a, b = load_run_folder(run_a), load_run_folder(run_b)
+    for run, folder in ((a, run_a), (b, run_b)):
+        if run.metric in ("wer", "cer"):  # the paired test below is sacrebleu's (chrF, BLEU)
+            raise OptionError(f"the run was measured with {run.metric}; triage compare takes chrf or bleu runs only "
+                              "(its paired bootstrap is sacrebleu's)", path=str(folder),
+                              hint="compare the two runs' summary.json corpus_metric by hand for now")
     m, rows = _match(a, b, allow_different_data)
     side_a, side_b = _side(a, labels[0]), _side(b, labels[1])
     sa, sb = _sentence(m, a, b)

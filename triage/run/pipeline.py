@@ -249,8 +249,10 @@ class _Audio:
         from triage.data.audio import devset_folder
 
         self.model = model
-        self.name = getattr(devset, "path", None) or "dev set"
-        model.use_audio_folder(devset_folder(getattr(devset, "path", None)))
+        path = getattr(devset, "path", None)
+        self.name = path or "dev set"
+        if path:  # a frame without a file (a study's re-run of some rows) keeps the folder the run set
+            model.use_audio_folder(devset_folder(path))
 
     def check(self, frame: pd.DataFrame) -> None:
         """An InputError (dev-set file, line, the audio path, what is wrong) for the step's first bad clip."""
