@@ -236,3 +236,18 @@ def test_sweeps_on_audio_and_an_error_rate_read_as_lower_is_better(whisper_dir, 
         widen["widths"] = [dict(w, corpus_delta=delta, resolved_share=1.0) for w in summary["widen"]["widths"]]
         rec = weigh(Evidence({"search": 20, "model": 5}, widen=WidenSection.from_json(widen)))
         assert rec.action == action, (delta, rec)
+
+
+def test_the_score_cache_is_keyed_on_the_audio_samples(whisper_dir, tmp_path, capsys):
+    """A rerun finds every failed row in the cache; a clip whose samples change is scored again (the key is
+    the samples' hash, not the path)."""
+    dev = _devset(tmp_path / "data", 4, ["x", "y", "z", "w"])
+    out = tmp_path / "run"
+    for expect_hits in (0, 4):
+        rc, _, err = _run(capsys, "--model", whisper_dir, "--data", dev, "--out", out)
+        assert rc == 0, err
+        assert json.loads((out / "run.json").read_text())["cache"] == {"hits": expect_hits, "misses": 4 - expect_hits}
+    write_tone(tmp_path / "data" / "clips" / "row2.wav", 0.55, 8000, 1, freq=999, seed=5)  # same path, new samples
+    rc, _, err = _run(capsys, "--model", whisper_dir, "--data", dev, "--out", out)
+    assert rc == 0, err
+    assert json.loads((out / "run.json").read_text())["cache"] == {"hits": 3, "misses": 1}
