@@ -235,3 +235,22 @@ def test_speech2text_reference_logprob_equals_the_models_loss(s2t, long_clips):
         with torch.no_grad():  # the model shifts the labels right behind its decoder start token itself
             loss = s2t.model(**feats, labels=labels).loss
         assert sc.logprob_sum == pytest.approx(-float(loss) * (len(t) + 1), abs=1e-4)
+
+
+def test_whisper_targets_get_the_leading_space_the_model_writes(tmp_path, clips):
+    """A tokenizer with space-prefixed words (a merge of the space symbol with "a"): the reference "ab" is
+    scored as " ab" (the space-prefixed token first, as generate writes it), "xb" stays as written (a
+    lone space first is what begin-suppress forbids), text that starts with a space keeps it."""
+    from tinyspeech import make_whisper_dir
+
+    folder = make_whisper_dir(tmp_path / "merges", merges=[("Ġ", "a")])
+    m = load_model(str(folder))
+    ga = m.tokenizer.convert_tokens_to_ids("Ġa")
+    ab, xb, spaced = m.tokenize_targets(["ab", "xb", " ab"])
+    assert ab == [ga, ord("b")] and spaced == ab
+    assert xb == [ord("x"), ord("b")]
+    assert m.tokenize_targets([m.detokenize(ab)]) == [ab]  # decoded text round-trips to the same ids
+    s = m.default_settings.replace(beam=2, max_new_tokens=8)
+    src = m.tokenize_sources(clips[:1])
+    first = score_requests(m, s, [ScoreRequest(src[0], [ab, [ord(" "), ord("a"), ord("b")]])])[0]
+    assert first[0].blocked_rule is None and first[1].blocked_rule == "suppressed first token"

@@ -35,24 +35,28 @@ def _byte_symbols() -> list[str]:
     return [chr(table[b]) for b in range(256)]
 
 
-def make_whisper_tokenizer():
+def make_whisper_tokenizer(merges: list[tuple[str, str]] = ()):
+    """Byte-level: every byte one token (ids 0-255 in byte order), plus one token per merge, then the specials."""
     from transformers import WhisperTokenizer
 
     vocab = {s: i for i, s in enumerate(_byte_symbols())}
-    tok = WhisperTokenizer(vocab=vocab, merges=[])
+    for a, b in merges:
+        vocab[a + b] = len(vocab)
+    tok = WhisperTokenizer(vocab=vocab, merges=list(merges))
     tok.add_special_tokens({"additional_special_tokens": SPECIALS[1:]})
     return tok
 
 
 def make_whisper_dir(path: Path, *, seed: int = 0, chunk_seconds: int = 2, multilingual: bool = True,
                      d_model: int = 16, layers: int = 1, max_target_positions: int = 64, eos_bias: float = 3.0,
+                     merges: list[tuple[str, str]] = (),
                      **gen) -> Path:
     """A random Whisper checkpoint in `path` (returned). Extra keywords go to the generation config."""
     from transformers import WhisperConfig, WhisperFeatureExtractor, WhisperForConditionalGeneration
 
     path = Path(path)
     path.mkdir(parents=True, exist_ok=True)
-    tok = make_whisper_tokenizer()
+    tok = make_whisper_tokenizer(merges)
     ids = {s: tok.convert_tokens_to_ids(s) for s in SPECIALS}
     fe = WhisperFeatureExtractor(feature_size=80, sampling_rate=16000, hop_length=160, chunk_length=chunk_seconds,
                                  n_fft=400)

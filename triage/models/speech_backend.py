@@ -212,9 +212,26 @@ class SpeechModel:
         return out
 
     def tokenize_targets(self, texts: Sequence[str]) -> list[list[int]]:
-        ids = self.tokenizer(list(texts), add_special_tokens=False)["input_ids"]
+        """Target ids (no end token). Whisper writes a transcript with a leading space (its first token is
+        a space-prefixed word: " Hello" is one token), while references are usually written without it:
+        a Whisper target that does not start with whitespace is tokenized with that space in front, unless
+        the space would come out as a token of its own (which generate never writes first: the
+        begin-suppress rule). Decoded text keeps its space, so an output tokenizes back to its own ids."""
+        texts = list(texts)
+        ids = self._ids(texts)
+        if self.whisper:
+            lone = self._ids([" "])[0]
+            spaced = [k for k, t in enumerate(texts) if t and not t[0].isspace()]
+            if spaced:
+                with_space = self._ids([" " + texts[k] for k in spaced])
+                for k, row in zip(spaced, with_space, strict=True):
+                    if row[: len(lone)] != lone:
+                        ids[k] = row
+        return ids
+
+    def _ids(self, texts: list[str]) -> list[list[int]]:
         out = []
-        for row in ids:
+        for row in self.tokenizer(texts, add_special_tokens=False)["input_ids"] if texts else []:
             row = list(row)
             if row and row[-1] == self.end_id:
                 row = row[:-1]
