@@ -74,7 +74,9 @@ SETTINGS_LABELS = [
 ]
 MODEL_LABELS = [("path", "model directory"), ("sha256", "sha256 of the model files"),
                 ("fingerprint", "fingerprint (sha256 of the weights)"), ("tokenizer", "tokenizer"),
-                ("prompt", "prompt (decoder-only model)"), ("prompt_example", "prompt of the first row")]
+                ("prompt", "prompt (decoder-only model)"), ("prompt_example", "prompt of the first row"),
+                ("decoder_prompt", "decoder prompt (speech model; not scored)"),
+                ("feature_extractor", "feature extractor"), ("longest_clip_s", "longest clip (s)")]
 DATA_LABELS = [("path", "data file"), ("sha256", "sha256 of the data file"), ("format", "format"),
                ("rows", "rows read"), ("outputs", "outputs")]
 COLUMN_LABELS = {
