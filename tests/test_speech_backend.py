@@ -254,3 +254,19 @@ def test_whisper_targets_get_the_leading_space_the_model_writes(tmp_path, clips)
     src = m.tokenize_sources(clips[:1])
     first = score_requests(m, s, [ScoreRequest(src[0], [ab, [ord(" "), ord("a"), ord("b")]])])[0]
     assert first[0].blocked_rule is None and first[1].blocked_rule == "suppressed first token"
+
+
+def test_a_prompt_from_forced_decoder_ids_is_the_one_generate_uses(tmp_path, clips):
+    """Older checkpoints give language and task as forced_decoder_ids ([[1, <|de|>], [2, <|translate|>]]): the
+    prompt follows them, and generate (told that language and task) decodes from the same prompt."""
+    from tinyspeech import make_whisper_dir
+
+    base = load_model(str(make_whisper_dir(tmp_path / "probe")))
+    de, tr = (base.tokenizer.convert_tokens_to_ids(t) for t in ("<|de|>", "<|translate|>"))
+    m = load_model(str(make_whisper_dir(tmp_path / "forced", language=None, forced_decoder_ids=[[1, de], [2, tr]])))
+    assert m.token_strings(m.prompt_ids) == ["<|startoftranscript|>", "<|de|>", "<|translate|>", "<|notimestamps|>"]
+    s = m.default_settings.replace(beam=2, alpha=1.0, max_new_tokens=8)
+    src = m.tokenize_sources(clips[:3])
+    gen = m.generate(s, src)
+    scored = score_requests(m, s, [ScoreRequest(i, [g.ids], [not g.finished]) for i, g in zip(src, gen, strict=True)])
+    assert [t[0].score for t in scored] == pytest.approx([g.score for g in gen], abs=1e-4)

@@ -141,8 +141,14 @@ class SpeechModel:
                                             num_segment_frames=frames, kwargs={})
         except ValueError as exc:
             raise OptionError(f"--language/--task: {str(exc).splitlines()[0]}") from None
-        self._language_task = {"language": getattr(g, "language", None), "task": getattr(g, "task", None)}
-        return [int(x) for x in init[0].tolist()]
+        prompt = [int(x) for x in init[0].tolist()]
+        # generate is told the language and task the prompt holds (a prompt from the older forced_decoder_ids
+        # included), so that it builds the same prompt and never detects a language of its own
+        lang = {v: k for k, v in (getattr(g, "lang_to_id", None) or {}).items()}
+        task = {v: k for k, v in (getattr(g, "task_to_id", None) or {}).items()}
+        self._language_task = {"language": next((lang[t] for t in prompt[1:] if t in lang), None),
+                               "task": next((task[t] for t in prompt[1:] if t in task), None)}
+        return prompt
 
     def _window_seconds(self) -> float | None:
         """Longest clip the model reads: Whisper's feature window (30 s for released checkpoints), or the
