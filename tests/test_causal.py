@@ -347,3 +347,20 @@ def test_head_fallback_gives_the_same_numbers(sources):
     for s, t, row in zip(src_ids, targets, got, strict=True):
         for ids, res in zip([t, t[:1]], row, strict=True):
             assert res.logprobs == pytest.approx(plain_logprobs(m, s, ids + [m.end_id]), abs=1e-5)
+
+
+def test_prompt_and_completion_beyond_the_positions_is_one_line(cm):
+    # a prompt longer than the model's positions (less one for the completion) is skipped as too long;
+    # one that fits but leaves too little room for the completion stops with a one-line ModelError on
+    # a model with learned positions (GPT-2), while a rotary one (Llama) reads on, as generate does
+    from triage.errors import ModelError
+    from triage.scoring.scorer import source_problem
+
+    assert cm.max_source_tokens == 95
+    assert "the model takes at most 95" in source_problem(cm, [8] * 96)
+    req = ScoreRequest([8] * 94, [[9, 10, 11]])
+    if type(cm.model).__name__.startswith("GPT2"):
+        with pytest.raises(ModelError, match="do not fit the model's 96 positions"):
+            score_requests(cm, model_settings(cm, beam=2), [req])
+    else:
+        assert score_requests(cm, model_settings(cm, beam=2), [req])[0][0].scored

@@ -185,8 +185,10 @@ class CausalModel:
         self.vocab_size = int(model.get_output_embeddings().weight.shape[0])
         self.unk_id = tokenizer.unk_token_id
         maxpos = getattr(cfg, "max_position_embeddings", None)
-        self.max_source_tokens = int(maxpos) if maxpos else None
-        self.max_target_tokens = int(maxpos) if maxpos else None
+        self.positions = int(maxpos) if maxpos else None
+        # prompt and completion share the positions: a prompt leaves room for at least one token
+        self.max_source_tokens = self.positions - 1 if self.positions else None
+        self.max_target_tokens = self.positions - 1 if self.positions else None
         self._fingerprint: str | None = None
         self._example: tuple[str, str] | None = None  # the first source rendered, and its prompt
         self._head_ok: bool | None = None
@@ -266,8 +268,8 @@ class CausalModel:
     @torch.inference_mode()
     def encode(self, sources: Sequence[Sequence[int]]) -> PromptState:
         ids, mask = self._left_pad(sources)
-        out = self.model(input_ids=ids, attention_mask=mask, position_ids=positions(mask), use_cache=True,
-                         logits_to_keep=1)
+        out = self._call(self.model, input_ids=ids, attention_mask=mask, position_ids=positions(mask),
+                         use_cache=True, logits_to_keep=1)
         last = torch.log_softmax(out.logits[:, -1, :].float(), dim=-1)
         return PromptState(out.cache, mask, last, torch.arange(len(sources), device=self.device))
 
@@ -317,8 +319,21 @@ class CausalModel:
         pos = positions(mask)[:, -tokens.shape[1]:]
         net = self.model.base_model if hidden else self.model
         kw = {} if hidden else {"logits_to_keep": keep}
-        return net(input_ids=tokens.to(self.device), attention_mask=mask, position_ids=pos, cache=past,
-                   use_cache=True, **kw)
+        return self._call(net, input_ids=tokens.to(self.device), attention_mask=mask, position_ids=pos, cache=past,
+                          use_cache=True, **kw)
+
+    def _call(self, net: Any, **kw: Any) -> Any:
+        """A forward pass; a prompt and completion beyond the model's positions is a one-line error
+        (models with learned position embeddings fail on an index there)."""
+        try:
+            return net(**kw)
+        except IndexError as exc:
+            width = kw["attention_mask"].shape[1]
+            if self.positions is not None and width > self.positions:
+                raise ModelError(f"a prompt and its completion of {width} tokens do not fit the model's "
+                                 f"{self.positions} positions", path=str(self.model_dir) if self.model_dir else None,
+                                 hint="lower --max-new-tokens, or shorten the prompt template") from exc
+            raise
 
     @torch.inference_mode()
     def next_logprobs(self, state: PromptState, prefixes: torch.Tensor, cache: Any = None):
