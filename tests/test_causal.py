@@ -364,3 +364,59 @@ def test_prompt_and_completion_beyond_the_positions_is_one_line(cm):
             score_requests(cm, model_settings(cm, beam=2), [req])
     else:
         assert score_requests(cm, model_settings(cm, beam=2), [req])[0][0].scored
+
+
+def _byte_level_model(template: str) -> CausalModel:
+    """A random GPT-2 over a byte-level BPE tokenizer trained here (tokenizers), 300 tokens."""
+    from tokenizers import Tokenizer, decoders, models, pre_tokenizers, trainers
+    from transformers import GPT2Config, GPT2LMHeadModel, PreTrainedTokenizerFast
+
+    tok = Tokenizer(models.BPE())
+    tok.pre_tokenizer = pre_tokenizers.ByteLevel(add_prefix_space=False)
+    tok.decoder = decoders.ByteLevel()
+    trainer = trainers.BpeTrainer(vocab_size=300, special_tokens=["<pad>", "</s>"],
+                                  initial_alphabet=pre_tokenizers.ByteLevel.alphabet())
+    tok.train_from_iterator(sentences(300, seed=1) + ["Say it plainly: Answer:"] * 20, trainer)
+    fast = PreTrainedTokenizerFast(tokenizer_object=tok, pad_token="<pad>", eos_token="</s>")
+    torch.manual_seed(4)
+    hf = GPT2LMHeadModel(GPT2Config(vocab_size=len(fast), n_positions=96, n_embd=32, n_layer=2, n_head=2,
+                                    bos_token_id=1, eos_token_id=1, pad_token_id=0)).eval()
+    hf.generation_config.max_new_tokens = 6
+    return CausalModel(hf, fast, PromptFormat(template=template))
+
+
+def test_completions_carry_the_space_the_model_writes():
+    # source: the tokenizer on the whole text prompt + ' ' + reference: the reference's tokens after the
+    # prompt's are those of ' ' + reference (byte-level BPE merges the space into the first word); the
+    # outputs transformers' generate writes come back to their ids through their text
+    m = _byte_level_model("Say it plainly: {source} Answer:")
+    assert m.lead_space
+    prompt = m.render("the bus")
+    for ref in ("the train is late", "platform two"):
+        whole = m.tokenizer(prompt + " " + ref, add_special_tokens=False)["input_ids"]
+        head = m.tokenizer(prompt, add_special_tokens=False)["input_ids"]
+        assert whole[: len(head)] == head
+        assert m.tokenize_targets([ref]) == [whole[len(head):]]
+    # a completion that starts with a space-word, as a trained model writes after 'Answer:' (generate's own
+    # begin_suppress_tokens rule bans every other first token)
+    pieces = m.tokenizer.convert_ids_to_tokens(list(range(len(m.tokenizer))))
+    m.model.generation_config.begin_suppress_tokens = [i for i, p in enumerate(pieces)
+                                                       if not (p.startswith("Ġ") and len(p) > 1)]
+    settings = model_settings(m, beam=2)
+    src_ids = m.tokenize_sources(sentences(12, seed=5, lo=1, hi=5))
+    spaced = 0
+    for g in m.generate(settings, src_ids):
+        text = m.detokenize(g.ids)
+        raw = m.tokenizer.decode(g.ids)
+        assert raw.startswith(" ")  # the first token is a space-word
+        # outputs whose ids are the tokenizer's own split of their text (random byte tokens can form
+        # invalid UTF-8, which no text gives back)
+        if m.tokenizer(raw, add_special_tokens=False)["input_ids"] == g.ids:
+            spaced += 1
+            assert not text.startswith(" ")
+            assert m.tokenize_targets([text]) == [g.ids]
+    assert spaced
+    # a prompt that ends in a newline: the completion is tokenized as written
+    m2 = _byte_level_model("Say it plainly: {source} Answer:\n")
+    assert not m2.lead_space
+    assert m2.tokenize_targets(["the train"]) == [m2.tokenizer("the train", add_special_tokens=False)["input_ids"]]

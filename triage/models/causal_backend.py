@@ -192,6 +192,10 @@ class CausalModel:
         self._fingerprint: str | None = None
         self._example: tuple[str, str] | None = None  # the first source rendered, and its prompt
         self._head_ok: bool | None = None
+        # a prompt that ends in text (not a space or a newline) is followed by a completion that starts
+        # with a space on a tokenizer that merges the space into the next word (byte-level BPE)
+        sample = self.render("x")
+        self.lead_space = bool(sample) and not sample[-1].isspace()
 
     # -------------------------------------------------------------- text <-> ids
     def render(self, text: str) -> str:
@@ -211,12 +215,29 @@ class CausalModel:
         return [list(x) for x in ids]
 
     def tokenize_targets(self, texts: Sequence[str]) -> list[list[int]]:
+        """Completion ids as the model writes them after the prompt: where the prompt ends in text and
+        the tokenizer merges a leading space into the first word (' the' one token, as byte-level BPE
+        does), the text is tokenized with that space; a space that would be a token of its own, or a
+        tokenizer that ignores it, leaves the text as written."""
         if not texts:
             return []
-        return [list(x) for x in self.tokenizer(list(texts), add_special_tokens=False)["input_ids"]]
+        plain = [list(x) for x in self.tokenizer(list(texts), add_special_tokens=False)["input_ids"]]
+        if not self.lead_space:
+            return plain
+        want = [i for i, t in enumerate(texts) if t and not t[0].isspace()]
+        if not want:
+            return plain
+        spaced = self.tokenizer([" " + texts[i] for i in want], add_special_tokens=False)["input_ids"]
+        for i, ids in zip(want, spaced, strict=True):
+            if ids and list(ids) != plain[i] and self.tokenizer.decode(list(ids[:1])) != " ":
+                plain[i] = list(ids)
+        return plain
 
     def detokenize(self, ids: Sequence[int]) -> str:
-        return self.tokenizer.decode(list(ids), skip_special_tokens=True)
+        """The completion's text; the leading space the model writes after a prompt that ends in text
+        is dropped (tokenize_targets puts it back)."""
+        text = self.tokenizer.decode(list(ids), skip_special_tokens=True)
+        return text[1:] if self.lead_space and text.startswith(" ") else text
 
     def token_strings(self, ids: Sequence[int]) -> list[str]:
         return [str(t) for t in self.tokenizer.convert_ids_to_tokens(list(ids))]
