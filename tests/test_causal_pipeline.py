@@ -178,3 +178,30 @@ def test_help_says_which_flags_apply_to_which_models(capsys):
     assert "prompt (decoder-only checkpoints only; an error for any other model)" in text
     assert "Every other flag means the same for every model family" in text
     assert "for a decoder-only model, completion tokens" in text
+
+
+def test_without_capabilities_the_numbers_are_the_same(chat_model):
+    # source: transformers' generate (through the backend's own decoder) and the backend's full scoring;
+    # the same model behind the plain interface only (triage's beam search, step-by-step scoring, rules
+    # built from the settings: none here) gives the same outputs, scores and verdicts
+    from test_capabilities import Plain
+
+    from triage.models.api import PROTOCOLS, Capabilities, capabilities
+
+    m = chat_model
+    assert capabilities(m) == Capabilities(**{**dict.fromkeys(PROTOCOLS, True), "audio_sources": False})
+    settings = model_settings(m)
+    plain = Plain(m, default_settings=settings)
+    src = sentences(10, seed=21, lo=1, hi=6)
+    ids = m.tokenize_sources(src)
+    mine, theirs = decode(plain, settings, ids, batch_size=4), decode(m, settings, ids, batch_size=4)
+    for a, b in zip(mine, theirs, strict=True):
+        assert (a.ids, a.finished) == (b.ids, b.finished)
+        assert a.score == pytest.approx(b.score, abs=1e-5)
+    refs = sentences(10, seed=22, lo=1, hi=6)
+    frame = pd.DataFrame({"id": [str(i) for i in range(10)], "source": src, "references": [[r] for r in refs],
+                          "output": [d.text for d in theirs]})
+    full = run_triage(m, frame, settings, TriageOptions(progress=False)).verdicts
+    bare = run_triage(plain, frame, settings, TriageOptions(progress=False)).verdicts
+    assert bare["verdict"].tolist() == full["verdict"].tolist()
+    assert bare["ref_logprob"].tolist() == pytest.approx(full["ref_logprob"].tolist(), abs=1e-5)
