@@ -9,7 +9,7 @@ $(BIN)/.installed: pyproject.toml
 	@command -v $(PY) >/dev/null 2>&1 || { echo "need $(PY) on PATH (or: make PY=python3 ...)"; exit 2; }
 	test -x $(BIN)/python || $(PY) -m venv $(VENV)
 	$(BIN)/pip install -q torch==2.13.0
-	$(BIN)/pip install -q -e '.[test,speech]'
+	$(BIN)/pip install -q -e '.[test,speech,cluster]'
 	touch $@
 
 setup: $(BIN)/.installed

@@ -142,6 +142,13 @@ def build_parser() -> argparse.ArgumentParser:
 
     g = r.add_argument_group("run")
     g.add_argument("--out", metavar="DIR", help="output folder (default reports/<dev-set name>)")
+    g.add_argument("--cluster", metavar="auto|HOST:PORT",
+                   help="score (and decode) on Ray workers: auto = a local Ray instance sized to this machine, "
+                   "HOST:PORT = a running cluster's head (ray start --head); the same files as without it "
+                   "(pip install 'triage[cluster]')")
+    g.add_argument("--workers", type=int, metavar="N",
+                   help="with --cluster: how many workers (default: the cluster's CPUs / --threads), each one "
+                   "process holding the model with --threads torch threads (default 1)")
     g.add_argument("--token-budget", type=int, default=4096, help="tokens per scoring batch (default 4096)")
     g.add_argument("--chunk-rows", type=int, default=1000, metavar="N",
                    help="dev-set rows per step: decoded, scored, cached and written together (default 1000); "
@@ -199,7 +206,7 @@ def _check_out_dir(out_dir: Path) -> None:
 FLAGS = {"chunk_rows": "--chunk-rows", "page_rows": "--page-rows", "max_rows": "--max-rows", "beam": "--beam",
          "check_rows": "--check-rows", "prompt_template": "--prompt-template", "chat_template": "--chat-template",
          "system": "--system", "language": "--language", "task": "--task",
-         "bucket_by": "--bucket-by"}
+         "bucket_by": "--bucket-by", "workers": "--workers", "threads": "--threads"}
 
 
 def _unescape(text: str | None) -> str | None:
@@ -241,6 +248,9 @@ def cmd_run(a: argparse.Namespace) -> int:
     plan = StudyPlan(widen=a.widen, beam_curve=a.beam_curve, alpha_grid=a.alpha_grid, redecode_alpha=a.redecode_alpha,
                      max_rows=a.max_rows, seed=a.seed, where_lost=a.where_lost, exact=a.exact,
                      check_rows=a.check_rows)
+    if a.workers is not None and not a.cluster:
+        raise OptionError("--workers needs --cluster")
+    cluster = None
     overrides = dict(beam=a.beam, alpha=a.alpha, penalty=a.penalty, max_new_tokens=a.max_new_tokens,
                      early_stopping=a.early_stopping, source_prefix=a.prefix)
     if a.threads:
@@ -248,15 +258,22 @@ def cmd_run(a: argparse.Namespace) -> int:
 
         torch.set_num_threads(a.threads)
     try:
+        if a.cluster:  # only now is Ray imported
+            from triage.cluster import connect
+
+            cluster = connect(a.cluster, workers=a.workers, threads=a.threads or 1)
         outcome = triage_run(a.model, stream, overrides, options, studies=plan, out=out_dir, page_rows=a.page_rows,
                              command="triage " + " ".join(sys.argv[1:]),
                              load=dict(device=a.device, allow_pickle=a.allow_pickle,
                                        trust_remote_code=a.trust_remote_code,
                                        prompt_template=_unescape(a.prompt_template), chat_template=a.chat_template,
                                        system=_unescape(a.system), language=a.language, task=a.task),
-                             on_note=lambda text: print(f"triage: {text}", file=sys.stderr))
+                             on_note=lambda text: print(f"triage: {text}", file=sys.stderr), cluster=cluster)
     except OptionValueError as exc:  # the library names its parameter, the command line its flag
         raise OptionError(f"{FLAGS.get(exc.option, exc.option)} {exc.detail}") from None
+    finally:
+        if cluster is not None:
+            cluster.close()
     _print_summary(outcome.result, out_dir, outcome.run_info)
     problem = outcome.settings_problem()
     if problem is not None:

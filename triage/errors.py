@@ -33,6 +33,10 @@ class ModelError(TriageError):
     """The model directory cannot be loaded as given."""
 
 
+class ClusterError(TriageError):
+    """The Ray cluster cannot be reached, or a worker cannot load the model or went missing."""
+
+
 class OptionError(TriageError):
     """An option value is wrong or two options contradict each other."""
 

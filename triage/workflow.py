@@ -158,6 +158,7 @@ def triage_run(
     command: str | None = None,
     load: Mapping[str, Any] | None = None,
     on_note: Callable[[str], None] = _no_note,
+    cluster: Any = None,
 ) -> RunOutcome:
     """Triage a dev set, run the studies, decide the recommendation, write the run folder.
 
@@ -170,7 +171,11 @@ def triage_run(
     out: the run folder to write (verdicts.csv, summary.json, tokens.jsonl, run.json,
     report.html); None writes nothing and keeps the rows in the result. page_rows: failed rows
     per verdict the page lists. command: what run.json records as the command. on_note: told
-    the things a person running it should hear (the studies' estimated time).
+    the things a person running it should hear (the studies' estimated time). cluster: a
+    triage.cluster.Cluster (from triage.cluster.connect), or "auto" / "HOST:PORT" to connect for
+    this run only, or a triage.cluster.WorkerPool already holding this model (left running): the
+    failed rows' scoring (and the decoding) of each step runs on the workers, which load the model
+    spec themselves; the files are the same bytes as without a cluster (same torch threads per process).
 
     Raises OptionError (bad options, before anything is scored), InputError, ModelError.
     """
@@ -190,6 +195,9 @@ def triage_run(
         check_out_dir(out_dir)  # a folder that cannot be made fails now, not after scoring
 
     spec = model if isinstance(model, str) else None
+    if cluster is not None and spec is None:
+        raise OptionError("a cluster run takes the model as a path or name (each worker loads it), not a "
+                          "loaded model object")
     if spec is not None:
         from triage.models.loading import load_model
 
@@ -203,17 +211,62 @@ def triage_run(
     info = model_info(model, spec) if spec is not None else None
     plan = replace(plan, widen=widths, alpha_grid=alphas, redecode_alpha=redecode)
 
+    opened, started, pool = None, None, None
+    try:
+        if cluster is not None:
+            opened, started, pool = _start_workers(cluster, spec, load)
+        return _run(model, spec, dev, settings, options, plan, info, out_dir, page_rows, command, on_note, pool, t0)
+    finally:
+        if started is not None:
+            started.close()  # the workers stop, also on Ctrl-C
+        if opened is not None:
+            opened.close()
+
+
+def _start_workers(cluster: Any, spec: str, load: Mapping[str, Any] | None):
+    """(what this run opened and closes at its end: a Cluster or None, a WorkerPool or None; the pool to use)."""
+    import os
+
+    from triage.cluster import connect
+    from triage.cluster.pool import WorkerPool
+
+    where = os.path.abspath(spec) if not spec.startswith("python:") and os.path.exists(spec) else spec
+    if isinstance(cluster, WorkerPool):  # started by the caller, for several runs of one model
+        if cluster.spec != where:
+            raise OptionError(f"the worker pool holds the model {cluster.spec}, the run asks for {where}")
+        return None, None, cluster
+    opened = connect(cluster) if isinstance(cluster, str) else None
+    try:
+        pool = (opened or cluster).pool(where, load)
+    except BaseException:
+        if opened is not None:
+            opened.close()
+        raise
+    return opened, pool, pool
+
+
+def _run(model, spec, dev, settings, options, plan, info, out_dir, page_rows, command, on_note, pool, t0) -> RunOutcome:
+    """The triage, the studies, the recommendation and the run folder (pool: the cluster's workers, or None:
+    every decode and scoring batch inside, the studies' too, goes to it)."""
+    from triage.decoding.decode import pool_for_run
+
+    with pool_for_run(pool):
+        return _run_here(model, spec, dev, settings, options, plan, info, out_dir, page_rows, command, on_note, pool, t0)
+
+
+def _run_here(model, spec, dev, settings, options, plan, info, out_dir, page_rows, command, on_note, pool,
+              t0) -> RunOutcome:
     writer = RunWriter(out_dir, page_rows) if out_dir is not None else None
     from triage.studies.reproduce import FailedRowSample
 
     sample = FailedRowSample(plan.check_rows, plan.seed)
     try:
         if plan.needs_rows:
-            result, tables = _in_memory(model, dev, settings, options, plan, info, on_note, sample)
+            result, tables = _in_memory(model, dev, settings, options, plan, info, on_note, sample, pool)
             if writer is not None:
                 writer.add(result.verdicts, result.tokens)
         else:
-            result, tables = _streamed(model, dev, settings, options, plan, info, writer, sample)
+            result, tables = _streamed(model, dev, settings, options, plan, info, writer, sample, pool)
         if spec is not None:  # described again after the run: a decoder-only model names its first row's prompt
             result.summary.model = model_info(model, spec)
         _check_outputs(model, result, sample, options)
@@ -227,6 +280,8 @@ def triage_run(
                 "cache": result.cache,
                 "page_rows": writer.page.per_verdict,  # triage report lists as many unless told otherwise
             }
+            if pool is not None:
+                run_info["cluster"] = pool.describe()
             writer.finish(result.summary, run_info)
     finally:
         if writer is not None:
@@ -244,12 +299,13 @@ def _check_outputs(model, result: TriageResult, sample, options: TriageOptions) 
     result.summary.reproduction = check_outputs(model, result.settings, sample, options.progress)
 
 
-def _in_memory(model, dev, settings, options, plan: StudyPlan, info, on_note, sample) -> tuple[TriageResult, dict]:
+def _in_memory(model, dev, settings, options, plan: StudyPlan, info, on_note, sample,
+               pool=None) -> tuple[TriageResult, dict]:
     """The rows held in memory: triage, then the sweeps and the search checks on them."""
     from triage.studies.plan import estimate_seconds
     from triage.studies.runner import run_search_checks, run_studies
 
-    result = run_triage(model, dev, settings, options, model_info=info, on_step=sample.add_step)
+    result = run_triage(model, dev, settings, options, model_info=info, on_step=sample.add_step, pool=pool)
     sweep_plan = dict(widen=plan.widen, beam_curve_max=plan.beam_curve, alphas=plan.alpha_grid,
                       redecode_alpha=plan.redecode_alpha, max_rows=plan.max_rows, seed=plan.seed)
     if plan.decodes:
@@ -262,7 +318,8 @@ def _in_memory(model, dev, settings, options, plan: StudyPlan, info, on_note, sa
     return result, done.tables
 
 
-def _streamed(model, dev, settings, options, plan: StudyPlan, info, writer, sample) -> tuple[TriageResult, dict]:
+def _streamed(model, dev, settings, options, plan: StudyPlan, info, writer, sample,
+              pool=None) -> tuple[TriageResult, dict]:
     """The dev set streamed through: each step's rows go to the writer (and are kept only when
     nothing is written); the length-penalty re-ranking is tallied step by step."""
     from triage.studies.length_penalty import PenaltyTally
@@ -271,7 +328,8 @@ def _streamed(model, dev, settings, options, plan: StudyPlan, info, writer, samp
     penalty = PenaltyTally(settings, options.margin, options.metric, plan.alpha_grid)
     steps = [penalty.add_step, sample.add_step] if writer is None else [writer.add_step, penalty.add_step,
                                                                           sample.add_step]
-    result = run_triage(model, dev, settings, options, model_info=info, keep=writer is None, on_step=steps)
+    result = run_triage(model, dev, settings, options, model_info=info, keep=writer is None, on_step=steps,
+                        pool=pool)
     done = run_studies(model, result, alphas=plan.alpha_grid, progress=options.progress, length_penalty=True,
                        penalty_tally=penalty)
     _merge(result.summary, done)

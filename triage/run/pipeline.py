@@ -187,13 +187,16 @@ def run_triage(
     model_info: dict[str, Any] | None = None,
     keep: bool = True,
     on_step: Callable[[ChunkResult], None] | Sequence[Callable[[ChunkResult], None]] = (),
+    pool: Any = None,
 ) -> TriageResult:
     """Triage a dev set: a DevSet from read_devset, a DataFrame with id, source, references,
     output, or a DevSetStream from stream_devset.
 
     on_step: called with each step's ChunkResult, in input order (e.g. triage.rundir.writer.RunWriter.add_step,
     which appends the rows to the run's files). keep=False keeps no rows (result.verdicts is None,
-    result.scores empty): memory then no longer grows with the dev set.
+    result.scores empty): memory then no longer grows with the dev set. pool: scores (and decodes)
+    each step's planned batches on other processes (triage.cluster's WorkerPool); the steps, the
+    batches and so every number stay as they are here.
     """
     options = options or TriageOptions()
     settings = settings or model_settings(model)
@@ -218,7 +221,7 @@ def run_triage(
             for frame in steps:
                 if audio is not None:
                     audio.check(frame)
-                part = _triage_step(model, frame, settings, options, done, cache, counts, bar.update)
+                part = _triage_step(model, frame, settings, options, done, cache, counts, bar.update, pool)
                 tally.add(part)
                 for consume in consumers:
                     consume(part)
@@ -288,7 +291,8 @@ def _audio_sources(model, devset) -> _Audio | None:
 
 
 def _triage_step(model, frame: pd.DataFrame, settings: DecoderSettings, options: TriageOptions, offset: int,
-                 cache, counts: dict[str, int], progress: Callable[[int], Any] = lambda k: None) -> ChunkResult:
+                 cache, counts: dict[str, int], progress: Callable[[int], Any] = lambda k: None,
+                 pool: Any = None) -> ChunkResult:
     """One step: rows offset .. offset + len(frame) - 1 of the dev set. `progress(k)` is told
     of each row finished (rows to decode as they are decoded, the others at the end); `counts`
     of the step's rows and failed rows the moment their scores are committed to the cache."""
@@ -303,7 +307,7 @@ def _triage_step(model, frame: pd.DataFrame, settings: DecoderSettings, options:
     if todo:
         from triage.decoding.decode import decode
 
-        dec = decode(model, settings, [src_ids[i] for i in todo], progress=progress)
+        dec = decode(model, settings, [src_ids[i] for i in todo], progress=progress, pool=pool)
         for i, d in zip(todo, dec, strict=True):
             outputs[i] = d.text
 
@@ -349,7 +353,7 @@ def _triage_step(model, frame: pd.DataFrame, settings: DecoderSettings, options:
         counts["scored"] += len(fail_idx)
 
     scored = _score_rows(model, settings, options, cache, requests, [unscorable.get(i) for i in fail_idx],
-                         committed)
+                         committed, pool)
 
     # ---- verdicts, one row per input row in input order
     rows: list[dict[str, Any]] = []
@@ -498,7 +502,7 @@ def _unknown_parts(model, text: str, unk: int, most: int = 5) -> str:
     return ", ".join(repr(w) for w in found[:most]) + more
 
 
-def _score_rows(model, settings, options, cache, requests, problems, committed):
+def _score_rows(model, settings, options, cache, requests, problems, committed, pool=None):
     """Score the requests, leaving out targets with a known problem: they come back skipped."""
     kept_req = []
     for req, prob in zip(requests, problems, strict=True):
@@ -509,7 +513,7 @@ def _score_rows(model, settings, options, cache, requests, problems, committed):
         if keep:
             kept_req.append(ScoreRequest(req.source_ids, [req.targets[j] for j in keep],
                                          [req.allow_no_end[j] for j in keep]))
-    scored = _score_with_cache(model, settings, options, cache, kept_req)
+    scored = _score_with_cache(model, settings, options, cache, kept_req, pool)
     committed()
     it = iter(scored)
     results = []
@@ -532,7 +536,7 @@ def _open_cache(model, settings: DecoderSettings, options: TriageOptions):
     return ScoreCache(options.cache_dir, model.fingerprint(), settings.fingerprint())
 
 
-def _score_with_cache(model, settings, options, cache, requests):
+def _score_with_cache(model, settings, options, cache, requests, pool=None):
     """Scores of one step's requests: from the cache where it has them, the rest scored together
     and committed to the cache as one batch (so a resumed run batches as a clean one)."""
     results: list = [None] * len(requests)
@@ -544,7 +548,8 @@ def _score_with_cache(model, settings, options, cache, requests):
         else:
             todo.append(k)
     if todo:
-        out = score_requests(model, settings, [requests[k] for k in todo], token_budget=options.token_budget)
+        out = score_requests(model, settings, [requests[k] for k in todo], token_budget=options.token_budget,
+                             pool=pool)
         for k, r in zip(todo, out, strict=True):
             results[k] = r
         if cache is not None:

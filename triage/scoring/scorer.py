@@ -22,8 +22,9 @@ a plain per-target forward pass and log_softmax.
 from __future__ import annotations
 
 import math
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass, field
+from typing import Protocol
 
 import torch
 
@@ -82,6 +83,68 @@ def plan_target(ids: list[int], end_id: int, limit: int, allow_no_end: bool) -> 
     return labels, False, None
 
 
+@dataclass
+class ScoringPlan:
+    """How score_requests cuts its requests into batches: the scoring batches (request indices, in
+    the order scored), whether the prefix-tree path is used, and the targets that need no batch
+    (skipped: they cannot be scored). A batch's numbers depend only on its requests, their order
+    and the torch thread count, so scoring the same batches anywhere (another process, another
+    machine) gives the same bytes."""
+
+    batches: list[list[int]]
+    tree: bool
+    skipped: dict[tuple[int, int], TargetScore] = field(default_factory=dict)  # (request, target) -> score
+
+
+def plan_batches(model: SequenceModel, settings: DecoderSettings, requests: Sequence[ScoreRequest], *,
+                 token_budget: int = 4096) -> ScoringPlan:
+    """Length-sorted batches of the requests under the token budget (see score_requests)."""
+    limit = settings.limit_new_tokens()
+    skipped: dict[tuple[int, int], TargetScore] = {}
+    by_row: dict[int, list] = {}  # request index -> its scorable jobs, so a source is encoded once
+    for i, req in enumerate(requests):
+        jobs, skips = _plan_row(model, limit, req)
+        for j, score in skips.items():
+            skipped[(i, j)] = score
+        if jobs:
+            by_row[i] = jobs
+    tree = _fast_path_usable(model, settings, requests, by_row)
+    # order rows by their longest target
+    order = sorted(by_row, key=lambda i: (max(len(j[2]) for j in by_row[i]), len(requests[i].source_ids)))
+    batches: list[list[int]] = []
+    batch: list[int] = []
+    width = 0
+    n_targets = 0
+    for i in order:
+        w = max(max(len(j[2]) for j in by_row[i]), len(requests[i].source_ids))
+        if batch and max(width, w) * (n_targets + len(by_row[i])) > token_budget:
+            batches.append(batch)
+            batch, width, n_targets = [], 0, 0
+        batch.append(i)
+        width = max(width, w)
+        n_targets += len(by_row[i])
+    if batch:
+        batches.append(batch)
+    return ScoringPlan(batches, tree, skipped)
+
+
+def score_batch(model: SequenceModel, settings: DecoderSettings, requests: Sequence[ScoreRequest],
+                tree: bool) -> list[list[TargetScore]]:
+    """Score one planned batch (its requests in the plan's order); results[k][j] is target j of
+    request k. The same batch gives the same numbers in any process with the same thread count."""
+    limit = settings.limit_new_tokens()
+    results: list[list[TargetScore | None]] = [[None] * len(r.targets) for r in requests]
+    by_row: dict[int, list] = {}
+    for i, req in enumerate(requests):
+        jobs, skips = _plan_row(model, limit, req)
+        for j, score in skips.items():
+            results[i][j] = score
+        by_row[i] = [(i, *job[1:]) for job in jobs]
+    (_score_batch_tree if tree else _score_batch)(model, settings, requests, list(range(len(requests))), by_row,
+                                                  results)
+    return results  # type: ignore[return-value]
+
+
 def score_requests(
     model: SequenceModel,
     settings: DecoderSettings,
@@ -89,48 +152,55 @@ def score_requests(
     *,
     token_budget: int = 4096,
     progress: Callable[[int], None] | None = None,
+    pool: BatchScorer | None = None,
 ) -> list[list[TargetScore]]:
-    """Score every target of every request; results[i][j] is target j of request i."""
-    limit = settings.limit_new_tokens()
-    results: list[list[TargetScore | None]] = [[None] * len(r.targets) for r in requests]
-    jobs = []  # (request index, target index, labels, hit_limit, blocked)
-    for i, req in enumerate(requests):
-        for j, ids in enumerate(req.targets):
-            no_end = req.allow_no_end[j] if j < len(req.allow_no_end) else False
-            labels, hit, blocked = plan_target(ids, model.end_id, limit, no_end)
-            unscorable = _unscorable(model, req.source_ids, labels)
-            if unscorable:
-                kind, reason = unscorable
-                results[i][j] = TargetScore(labels, [], float("nan"), len(labels), float("nan"), hit, None, reason,
-                                            kind)
-                continue
-            jobs.append((i, j, labels, hit, blocked))
+    """Score every target of every request; results[i][j] is target j of request i.
 
-    # group jobs by row so a source is encoded once; order rows by their longest target
-    by_row: dict[int, list] = {}
-    for job in jobs:
-        by_row.setdefault(job[0], []).append(job)
-    fast = _fast_path_usable(model, settings, requests, by_row)
-    score_batch = _score_batch_tree if fast else _score_batch
-    order = sorted(by_row, key=lambda i: (max(len(j[2]) for j in by_row[i]), len(requests[i].source_ids)))
-    batch: list[int] = []
-    width = 0
-    n_targets = 0
-    for i in order:
-        w = max(max(len(j[2]) for j in by_row[i]), len(requests[i].source_ids))
-        if batch and max(width, w) * (n_targets + len(by_row[i])) > token_budget:
-            score_batch(model, settings, requests, batch, by_row, results)
-            if progress:
-                progress(len(batch))
-            batch, width, n_targets = [], 0, 0
-        batch.append(i)
-        width = max(width, w)
-        n_targets += len(by_row[i])
-    if batch:
-        score_batch(model, settings, requests, batch, by_row, results)
+    pool: scores the planned batches elsewhere (triage.cluster's workers); None: the pool the run
+    set (triage.decoding.decode.pool_for_run), else here. Either way the batches are the plan's, so the numbers are the same."""
+    plan = plan_batches(model, settings, requests, token_budget=token_budget)
+    if pool is None:
+        from triage.decoding.decode import run_pool
+
+        pool = run_pool()
+    results: list[list[TargetScore | None]] = [[None] * len(r.targets) for r in requests]
+    for (i, j), score in plan.skipped.items():
+        results[i][j] = score
+    shards = [[requests[i] for i in batch] for batch in plan.batches]
+    if pool is None:
+        done: Iterable[list[list[TargetScore]]] = (score_batch(model, settings, s, plan.tree) for s in shards)
+    else:
+        done = pool.score_batches(settings, shards, plan.tree)
+    for batch, scored in zip(plan.batches, done, strict=True):
+        for i, row in zip(batch, scored, strict=True):
+            results[i] = list(row)  # its skipped targets as the plan has them
         if progress:
             progress(len(batch))
     return results  # type: ignore[return-value]
+
+
+class BatchScorer(Protocol):
+    """Something that scores planned batches elsewhere and hands the results back in order."""
+
+    def score_batches(self, settings: DecoderSettings, batches: Sequence[Sequence[ScoreRequest]],
+                      tree: bool) -> Iterable[list[list[TargetScore]]]: ...
+
+
+def _plan_row(model: SequenceModel, limit: int, req: ScoreRequest) -> tuple[list, dict[int, TargetScore]]:
+    """One request's scorable jobs (request index 0, target index, labels, hit_limit, blocked) and the
+    scores of the targets that cannot be scored at all."""
+    jobs = []
+    skipped: dict[int, TargetScore] = {}
+    for j, ids in enumerate(req.targets):
+        no_end = req.allow_no_end[j] if j < len(req.allow_no_end) else False
+        labels, hit, blocked = plan_target(ids, model.end_id, limit, no_end)
+        unscorable = _unscorable(model, req.source_ids, labels)
+        if unscorable:
+            kind, reason = unscorable
+            skipped[j] = TargetScore(labels, [], float("nan"), len(labels), float("nan"), hit, None, reason, kind)
+            continue
+        jobs.append((0, j, labels, hit, blocked))
+    return jobs, skipped
 
 
 def _fast_path_usable(model, settings, requests, by_row) -> bool:
