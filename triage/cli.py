@@ -136,9 +136,9 @@ def build_parser() -> argparse.ArgumentParser:
                    "smallest width that keeps it")
     g.add_argument("--exact", action="store_true",
                    help="exact search (bounded depth-first) on short failed rows, with a budget per row")
-    g.add_argument("--check-rows", type=int, default=0, metavar="N",
+    g.add_argument("--check-rows", type=int, default=16, metavar="N",  # triage.studies.reproduce.DEFAULT_CHECK_ROWS
                    help="decode a seeded sample of N failed rows again at the stated settings to check that the "
-                   "given outputs come from them, e.g. 16 (default 0: off; it adds about 16%% to a demo run)")
+                   "given outputs come from them (default 16; 0: off)")
 
     g = r.add_argument_group("run")
     g.add_argument("--out", metavar="DIR", help="output folder (default reports/<dev-set name>)")
@@ -297,6 +297,10 @@ def _print_summary(result, out_dir: Path, run_info: dict) -> None:
     if ss.compared:
         lo, hi = ss.interval95
         print(f"  search-side share of compared failures: {ss.share:.0%} (95% interval {lo:.0%}-{hi:.0%})")
+    rep = s.reproduction
+    if rep is not None and rep.reproduced_share is not None:
+        print(f"  outputs check: {rep.reproduced} of {rep.checked} sampled failed outputs come out of the decoder "
+              f"again at these settings ({rep.reproduced_share:.0%})")
     rec = s.recommendation
     print(f"  recommendation: {rec.action}: {rec.because}")
     cache = result.cache

@@ -29,6 +29,7 @@ from triage.run.pipeline import TriageOptions, TriageResult, check_audio, run_tr
 from triage.run.summary import Summary
 from triage.rundir.writer import RunWriter, check_out_dir
 from triage.settings import DecoderSettings
+from triage.studies.reproduce import DEFAULT_CHECK_ROWS
 
 
 @dataclass
@@ -54,7 +55,7 @@ class StudyPlan:
     seed: int = 0
     where_lost: bool = False
     exact: bool = False
-    check_rows: int = 0  # off by default: 16 rows add about 16% to a demo run (benchmarks/bench_check_rows.py)
+    check_rows: int = DEFAULT_CHECK_ROWS  # 16 (benchmarks/bench_check_rows.py measures its cost, README)
 
     @property
     def decodes(self) -> bool:

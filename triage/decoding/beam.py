@@ -173,13 +173,23 @@ def _hypothesis(settings: DecoderSettings, tokens: list[int], lps: list[float], 
 
 # ---------------------------------------------------------------------------------- entry points
 def beam_search(model: SequenceModel, settings: DecoderSettings, source_ids: Sequence[Sequence[int]], *,
-                batch_size: int = 16, track: Sequence[Sequence[int]] | None = None) -> list[Hypothesis]:
+                batch_size: int = 16, track: Sequence[Sequence[int]] | None = None,
+                stop_when_lost: bool = False) -> list[Hypothesis]:
     """Decode every source with the decoder described by `settings`; one Hypothesis per source.
 
     `track`: reference target ids (without end token) per source. Each hypothesis then says
     whether the reference was kept to the end (`reference_kept`) and, if not, where it fell
     out (`loss`).
+
+    `stop_when_lost` (with `track`): a source stops as soon as its tracked target has left the
+    search (pruned, blocked, not eligible to finish, or the source's search ended without it):
+    the decoder can then no longer return it, which is all a caller asking "does the decoder
+    give this target?" needs. Such a hypothesis is not the decoder's output: it holds the best
+    finished so far and says ``extra["stopped_early"] = True``. A source whose target was
+    completed (it entered the finished set) decodes to its end as usual.
     """
+    if stop_when_lost and track is None:
+        raise ValueError("stop_when_lost needs track (the targets to watch)")
     source_ids = [list(map(int, s)) for s in source_ids]
     if track is not None and len(track) != len(source_ids):
         raise ValueError(f"track holds {len(track)} references for {len(source_ids)} sources")
@@ -193,9 +203,9 @@ def beam_search(model: SequenceModel, settings: DecoderSettings, source_ids: Seq
         chunk = source_ids[lo: lo + batch_size]
         refs = None if track is None else [list(track[i]) for i in range(lo, lo + len(chunk))]
         if settings.beam == 1:
-            out.extend(_greedy_chunk(model, settings, chunk, refs))
+            out.extend(_greedy_chunk(model, settings, chunk, refs, stop_when_lost))
         else:
-            out.extend(_beam_chunk(model, settings, chunk, refs))
+            out.extend(_beam_chunk(model, settings, chunk, refs, stop_when_lost))
     return out
 
 
@@ -212,9 +222,20 @@ class _Tracking:
         self.refs = [_reference_with_end(r, eos, end_id) for r in refs]
         self.losses: list[LossPoint | None] = [None] * len(refs)
         self.live = [True] * len(refs)
+        self._tensors: tuple[torch.Tensor, torch.Tensor] | None = None
         for i, fr in enumerate(self.refs):
             if len(fr) > limit:
                 self.lose(i, limit + 1, None, "length limit")
+
+    def tensors(self) -> tuple[torch.Tensor, torch.Tensor]:
+        """The references as a padded tensor [n, longest] (end token included) and their lengths [n]."""
+        if self._tensors is None:
+            width = max([len(r) for r in self.refs] + [1])
+            tok = torch.zeros((len(self.refs), width), dtype=torch.long)
+            for i, r in enumerate(self.refs):
+                tok[i, : len(r)] = torch.tensor(r, dtype=torch.long)
+            self._tensors = tok, torch.tensor([len(r) for r in self.refs], dtype=torch.long)
+        return self._tensors
 
     def lose(self, i: int, step: int, rank: int | None, reason: str) -> None:
         self.losses[i] = LossPoint(step=step, rank=rank, reason=reason)
@@ -229,10 +250,12 @@ class _Tracking:
         rank = 1 + int((values > val).sum())
         self.lose(i, step, rank, "blocked by rule" if torch.isneginf(val) else "pruned")
 
-    def attach(self, hyps: list[Hypothesis]) -> list[Hypothesis]:
-        for h, loss in zip(hyps, self.losses, strict=True):
+    def attach(self, hyps: list[Hypothesis], stopped: set[int] = frozenset()) -> list[Hypothesis]:
+        for i, (h, loss) in enumerate(zip(hyps, self.losses, strict=True)):
             h.loss = loss
             h.reference_kept = loss is None
+            if i in stopped:
+                h.extra["stopped_early"] = True
         return hyps
 
 
@@ -243,7 +266,7 @@ def _tracking(refs: list[list[int]] | None, model: SequenceModel, eos: list[int]
 # ---------------------------------------------------------------------------------- greedy
 @torch.inference_mode()
 def _greedy_chunk(model: SequenceModel, settings: DecoderSettings, sources: list[list[int]],
-                  refs: list[list[int]] | None) -> list[Hypothesis]:
+                  refs: list[list[int]] | None, stop_when_lost: bool = False) -> list[Hypothesis]:
     n = len(sources)
     limit = settings.limit_new_tokens()
     eos = _eos_ids(model, settings)
@@ -257,10 +280,21 @@ def _greedy_chunk(model: SequenceModel, settings: DecoderSettings, sources: list
     active = torch.arange(n)
     procs = build_processors(model, settings, src)
     track = _tracking(refs, model, eos, limit)
+    stopped: set[int] = set()  # sources dropped once their tracked target left (stop_when_lost)
 
     for t in range(limit):
         if len(active) == 0:
             break
+        if stop_when_lost:
+            gone = {row for row, i in enumerate(active.tolist()) if track.losses[i] is not None}
+            if gone:  # the greedy output already differs from the target: nothing more to learn
+                stopped.update(int(active[row]) for row in gone)
+                rows = torch.tensor([row for row in range(len(active)) if row not in gone], dtype=torch.long)
+                active = active[rows]
+                if len(active) == 0:
+                    break
+                state, cache = model.select(state, cache, rows)
+                procs = build_processors(model, settings, src[active])
         prefixes = torch.full((len(active), t + 1), int(model.start_id), dtype=torch.long)
         if t:
             prefixes[:, 1:] = torch.tensor([tokens[i][:t] for i in active.tolist()], dtype=torch.long)
@@ -269,12 +303,13 @@ def _greedy_chunk(model: SequenceModel, settings: DecoderSettings, sources: list
         best = lp.argmax(dim=-1)
         picked = lp.gather(1, best[:, None]).squeeze(1)
         sums[active] = sums[active] + picked
+        best_l, picked_l = best.tolist(), picked.tolist()
         for row, i in enumerate(active.tolist()):
-            tokens[i].append(int(best[row]))
-            lps[i].append(float(picked[row]))
+            tokens[i].append(best_l[row])
+            lps[i].append(picked_l[row])
             if track is not None and track.live[i]:
                 want = track.refs[i][t]
-                if int(best[row]) != want:
+                if best_l[row] != want:
                     track.lose_at(i, t + 1, lp[row], want)
                 elif t == len(track.refs[i]) - 1:
                     track.complete(i)  # the reference is the output
@@ -286,7 +321,7 @@ def _greedy_chunk(model: SequenceModel, settings: DecoderSettings, sources: list
                 state, cache = model.select(state, cache, rows)
                 procs = build_processors(model, settings, src[active])
     out = [_hypothesis(settings, tokens[i], lps[i], float(sums[i]), eos) for i in range(n)]
-    return out if track is None else track.attach(out)
+    return out if track is None else track.attach(out, stopped)
 
 
 # ---------------------------------------------------------------------------------- beam
@@ -342,7 +377,7 @@ class _Step:
 
 @torch.inference_mode()
 def _beam_chunk(model: SequenceModel, settings: DecoderSettings, sources: list[list[int]],
-                refs: list[list[int]] | None) -> list[Hypothesis]:
+                refs: list[list[int]] | None, stop_when_lost: bool = False) -> list[Hypothesis]:
     n = len(sources)
     K = settings.beam
     V = int(model.vocab_size)
@@ -359,6 +394,7 @@ def _beam_chunk(model: SequenceModel, settings: DecoderSettings, sources: list[l
     track = _tracking(refs, model, eos, limit)
     # beam index holding each source's reference prefix, -1 when not (or no longer) tracked
     ref_beam = torch.tensor([0 if track is not None and track.live[i] else -1 for i in range(n)], dtype=torch.long)
+    stopped: set[int] = set()  # sources dropped once their tracked target left (stop_when_lost)
 
     active = torch.arange(n)
     for t in range(limit):  # t tokens generated so far; this step picks token t+1
@@ -389,6 +425,10 @@ def _beam_chunk(model: SequenceModel, settings: DecoderSettings, sources: list[l
                 if ref_beam[i] >= 0:
                     track.lose(i, t + 2, None, "search stopped")
                     ref_beam[i] = -1
+        if stop_when_lost:
+            gone = torch.tensor([track.losses[i] is not None for i in active.tolist()], dtype=torch.bool)
+            stopped.update(int(i) for i in active[gone & ~done].tolist())
+            done = done | gone
         flat = (torch.arange(A)[:, None] * K + beam_src).reshape(-1)
         if bool(done.any()):
             rows = torch.nonzero(~done).squeeze(1)
@@ -400,7 +440,7 @@ def _beam_chunk(model: SequenceModel, settings: DecoderSettings, sources: list[l
         state, cache = model.select(state, cache, flat)
 
     out = [_best_finished(beams, settings, i, eos) for i in range(n)]
-    return out if track is None else track.attach(out)
+    return out if track is None else track.attach(out, stopped)
 
 
 def _candidates(beams: _Beams, active: torch.Tensor, lp: torch.Tensor, t: int, keep: int, limit: int,
@@ -484,27 +524,34 @@ def _best_finished(beams: _Beams, settings: DecoderSettings, i: int, eos: list[i
 
 def _track_step(t: int, active: torch.Tensor, step: _Step, open_: torch.Tensor, ref_beam: torch.Tensor,
                 track: _Tracking, V: int) -> None:
-    """Follow the reference prefix through one beam step (see LossPoint for the definitions)."""
-    for row, i in enumerate(active.tolist()):
-        b = int(ref_beam[i])
-        if b < 0:
-            continue
-        ref = track.refs[i]
-        flat = b * V + ref[t]
-        where = torch.nonzero(step.top_idx[row] == flat).squeeze(1)
-        pos = int(where[0]) if len(where) else -1
-        ref_beam[i] = -1
-        if t == len(ref) - 1:  # the reference's end token
-            if pos >= 0 and bool(step.did[row, pos]) and not bool(step.full[row, 0]) and bool(open_[i]):
-                track.complete(i)
-            else:
-                track.lose_at(i, t + 1, step.acc[row], flat)
-            continue
-        kept = torch.nonzero(step.nxt[row] == pos).squeeze(1) if pos >= 0 else torch.empty(0, dtype=torch.long)
-        if len(kept):
-            ref_beam[i] = int(kept[0])
+    """Follow the reference prefix through one beam step (see LossPoint for the definitions).
+
+    Vectorized over the tracked sources; only the sources whose reference completes or is lost
+    at this step are visited one by one."""
+    rb = ref_beam[active]
+    rows = torch.nonzero(rb >= 0).squeeze(1)
+    if not len(rows):
+        return
+    idx = active[rows]
+    ref_tok, ref_len = track.tensors()
+    flat = rb[rows] * V + ref_tok[idx, t]
+    match = step.top_idx[rows] == flat[:, None]                     # [R, keep]: where the extension ranks
+    has = match.any(dim=1)
+    pos = match.to(torch.int8).argmax(dim=1)                        # its candidate index (valid where `has`)
+    ref_beam[idx] = -1
+    is_end = ref_len[idx] - 1 == t                                   # this step's token is the reference's end token
+    finishes = has & step.did[rows, pos] & ~step.full[rows, 0] & open_[idx]
+    in_next = step.nxt[rows] == pos[:, None]                        # [R, K]: the running beam it became
+    runs = has & in_next.any(dim=1)
+    go_on = ~is_end & runs
+    ref_beam[idx[go_on]] = in_next[go_on].to(torch.int8).argmax(dim=1)
+    completes = is_end & finishes
+    for r in torch.nonzero(~go_on).squeeze(1).tolist():
+        i = int(idx[r])
+        if bool(completes[r]):
+            track.complete(i)
         else:
-            track.lose_at(i, t + 1, step.acc[row], flat)
+            track.lose_at(i, t + 1, step.acc[int(rows[r])], int(flat[r]))
 
 
 # ---------------------------------------------------------------------------------- widths

@@ -2,12 +2,17 @@
 again at the run's settings and each new output compared with the given one (after whitespace
 normalization, as a correct row is found).
 
+The decode watches each given output (triage.decoding.watch): a row stops as soon as its output
+has left the search, since the decoder can then no longer give it (such a row is not reproduced
+and lists no decoded text, only the target position where the output left); a row whose output
+stays in the search is decoded to its end. An output is watched as the model's tokenizer spells
+it, and only where those tokens spell the output again: a decoder that wrote the same text with
+other tokens would be counted as not reproduced (the run scores the tokenizer's tokens too).
+
 The sample is drawn while the dev set streams through (FailedRowSample.add_step takes each
 step's ChunkResult): every failed row whose source the model can read gets a key from a hash of
 the seed and its dev-set index, and the rows of the `n` smallest keys are kept. So the sample is
 the same whatever the step size, streamed or in memory, and memory holds at most `n` rows.
-The decode goes through the same path as the widen study's reproduction of the current width
-(common.reproduce).
 
 Writes the summary's "reproduction" section (ReproductionSection); triage.decision reads its
 `reproduced_share` (below 50%: inconclusive) and the run warns below 90%.
@@ -21,12 +26,12 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from triage.display import View, fmt_pct, fmt_value, table, tables
-from triage.run.verdicts import FAILED
-from triage.studies.common import Section, reproduce
+from triage.run.verdicts import FAILED, matches_any
+from triage.studies.common import Section, omit_none
 
 NAME = "reproduction"
 TITLE = "Do the outputs come from these settings?"
-DEFAULT_CHECK_ROWS = 0  # opt-in until its cost is under 10% of a run (16 rows: +16% on the demo)
+DEFAULT_CHECK_ROWS = 16  # benchmarks/bench_check_rows.py measures what it adds to a demo run (README)
 WARN_BELOW = 0.9  # a reproduced share below this gives a warning line (triage_run's reproduction_warning)
 MOST_LISTED = 20  # differing rows listed in the summary (all of them with the default sample)
 
@@ -83,7 +88,8 @@ class DifferingRow(Section):
     line: int
     id: str
     given: str
-    decoded: str
+    decoded: str | None                         # None: not decoded to its end (the output had left the search)
+    left_at: int | None = omit_none()           # 1-based target position (end token counted) where it left
 
 
 @dataclass
@@ -116,14 +122,26 @@ def check_outputs(model, settings, sample: FailedRowSample, progress: bool = Fal
     section.checked = len(rows)
     if not rows:
         return section
-    decoded, _seconds, same = reproduce(model, settings, src, [r.output for r in rows],
-                                        f"beam {settings.beam} (outputs check)", progress)
-    differ = [DifferingRow(r.line, r.id, r.output, d.text)
-              for r, d, ok in zip(rows, decoded, same, strict=True) if not ok]
+    watched = _decode(model, settings, src, [r.output for r in rows], progress)
+    same = [w.decoded is not None and matches_any(w.decoded.text, [r.output]) for r, w in zip(rows, watched, strict=True)]
+    differ = [DifferingRow(r.line, r.id, r.output, w.decoded.text if w.decoded is not None else None, w.left_at)
+              for r, w, ok in zip(rows, watched, same, strict=True) if not ok]
     section.reproduced = sum(same)
     section.reproduced_share = section.reproduced / len(rows)
     section.differing, section.differing_rows = differ[:MOST_LISTED], len(differ)
     return section
+
+
+def _decode(model, settings, src, given: list[str], progress: bool):
+    """Decode the sources at `settings`, each watching its given output where the tokenizer's tokens
+    spell that output again (triage.decoding.watch)."""
+    from triage.decoding.watch import decode_watching
+    from triage.run.progress import bar
+
+    ids = model.tokenize_targets(given)
+    targets = [t if matches_any(model.detokenize(t), [g]) else None for t, g in zip(ids, given, strict=True)]
+    with bar(len(src), f"beam {settings.beam} (outputs check)", progress) as b:
+        return decode_watching(model, settings, src, targets, progress=b.update)
 
 
 # --------------------------------------------------------------------------- how the report shows it
@@ -139,7 +157,10 @@ def view(r: ReproductionSection) -> View:
     if r.differing_rows:
         lines.append("Below 90% the outputs were probably decoded with other settings; below 50% nothing is "
                      "recommended. Give the beam width, penalty and alpha you decoded with.")
+    if any(d.decoded is None for d in r.differing):
+        lines.append("A row whose output left the search was not decoded further (the decoder can no longer "
+                     "give it): its table entry says at which token.")
     spec = [("line", "line", "int"), ("id", "id", "text"), ("given", "given output", "text"),
-            ("decoded", "decoded at these settings", "text")]
+            ("decoded", "decoded at these settings", "text"), ("left_at", "output left the search at token", "int")]
     shown = tables(table("Rows whose output differs", spec, r.differing)) if r.differing else []
     return View(lines=lines, tables=shown)
